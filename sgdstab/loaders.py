@@ -1,0 +1,84 @@
+"""Index recording for a user's DataLoader without changing what it yields.
+
+A DataLoader refuses a new batch sampler after construction, so we build a sibling loader over
+the same dataset, collate function, workers, generator and worker init, whose batch sampler wraps
+the user's one and records each list of indices as it is drawn. Workers prefetch ahead of the loop,
+but batches come back in order, so the recorded lists sit in a FIFO and one is popped per batch.
+The sibling draws its base seed from the same generator (or the global RNG) exactly as the user's
+loader would, so the main run is unchanged.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from collections.abc import Iterator, Sized
+from typing import Any
+
+import numpy as np
+from torch.utils.data import DataLoader, Dataset, IterableDataset
+
+from .lockstep import LockstepError
+
+__all__ = ["IndexRecorder", "recording_loader", "check_train_set"]
+
+
+class IndexRecorder:
+    """A batch sampler that yields the wrapped one's index lists and keeps a copy of each."""
+
+    def __init__(self, batch_sampler: Any) -> None:
+        self.batch_sampler = batch_sampler
+        self.drawn: deque[np.ndarray] = deque()
+
+    def __iter__(self) -> Iterator[list[int]]:
+        for indices in self.batch_sampler:
+            self.drawn.append(np.asarray(list(indices), dtype=np.int64))
+            yield indices
+
+    def __len__(self) -> int:
+        return len(self.batch_sampler)
+
+
+def check_train_set(train_set: Any) -> int:
+    """The size of a map-style training set; anything else is refused with a clear error."""
+    if isinstance(train_set, IterableDataset):
+        raise LockstepError("train_set is an IterableDataset: the tracker needs a map-style "
+                            "dataset whose examples it can address by index")
+    if not isinstance(train_set, Sized):
+        raise LockstepError("train_set has no len(): the tracker needs to know n, the number of "
+                            "training examples")
+    if not hasattr(train_set, "__getitem__"):
+        raise LockstepError("train_set cannot be indexed (no __getitem__)")
+    return len(train_set)
+
+
+def recording_loader(loader: DataLoader, train_set: Dataset) -> tuple[DataLoader, IndexRecorder]:
+    """A sibling of ``loader`` that yields the same batches and records their indices."""
+    if not isinstance(loader, DataLoader):
+        raise LockstepError(f"tracker.batches() takes a torch DataLoader, got "
+                            f"{type(loader).__name__}")
+    if loader.dataset is not train_set:
+        raise LockstepError("the loader does not draw from train_set: pass the same dataset "
+                            "object to the tracker and to the DataLoader")
+    if isinstance(loader.dataset, IterableDataset):
+        raise LockstepError("the loader reads an IterableDataset; the tracker needs a map-style "
+                            "dataset")
+    if loader.batch_sampler is None:
+        raise LockstepError("the loader does not batch (batch_size=None): the tracker needs "
+                            "batches of examples drawn by index")
+    if not getattr(loader, "in_order", True):
+        raise LockstepError("the loader has in_order=False: batches may arrive out of order, so "
+                            "their indices cannot be matched")
+    recorder = IndexRecorder(loader.batch_sampler)
+    options: dict[str, Any] = {
+        "batch_sampler": recorder,
+        "num_workers": loader.num_workers,
+        "collate_fn": loader.collate_fn,
+        "pin_memory": loader.pin_memory,
+        "timeout": loader.timeout,
+        "worker_init_fn": loader.worker_init_fn,
+        "multiprocessing_context": loader.multiprocessing_context,
+        "generator": loader.generator,
+    }
+    if loader.num_workers > 0:
+        options["prefetch_factor"] = loader.prefetch_factor
+    return DataLoader(loader.dataset, **options), recorder

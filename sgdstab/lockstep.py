@@ -1,0 +1,327 @@
+"""The shadow engine: neighbour specs, row substitution in a batch, RNG replay, lazy fork.
+
+A *shadow* is a copy of the user's model trained on a neighbouring dataset: the training set with
+one example swapped. It sees the very batches the main run saw, in the same order, with the swapped
+example's row substituted, and it replays the torch RNG state captured when each batch was yielded,
+so dropout masks and in-loop augmentation match the main run.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import copy
+import random
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import torch
+from torch import nn
+
+__all__ = [
+    "NeighbourSpec",
+    "LockstepError",
+    "preserved_rng",
+    "substitute_rows",
+    "select_rows",
+    "batch_length",
+    "Shadow",
+    "PerShadowEngine",
+    "StepGroup",
+]
+
+
+class LockstepError(ValueError):
+    """An input the lockstep engine cannot follow exactly (a clear refusal, never a guess)."""
+
+
+@dataclass(frozen=True)
+class NeighbourSpec:
+    """One neighbouring dataset: training example ``index`` replaced by ``replacement``.
+
+    ``origin`` says where the replacement came from: ``"holdout"`` (drawn from the replacement set,
+    index ``source_index``), ``"train"`` (another training example, a duplicate), ``"explicit"``
+    (given by the user) or ``"self"`` (the null swap of the audit).
+    """
+
+    index: int
+    replacement: Any
+    origin: str
+    source_index: int | None = None
+
+    def describe(self) -> dict[str, Any]:
+        return {"index": self.index, "origin": self.origin, "source_index": self.source_index}
+
+
+@contextlib.contextmanager
+def preserved_rng() -> Iterator[None]:
+    """Run a block without disturbing torch's CPU RNG, Python's ``random`` or NumPy's global RNG."""
+    torch_state = torch.get_rng_state()
+    python_state = random.getstate()
+    numpy_state = np.random.get_state()
+    try:
+        yield
+    finally:
+        torch.set_rng_state(torch_state)
+        random.setstate(python_state)
+        np.random.set_state(numpy_state)
+
+
+def batch_length(batch: Any) -> int | None:
+    """The number of rows of a collated batch (dim 0 of its first tensor), or None."""
+    if isinstance(batch, torch.Tensor):
+        return int(batch.shape[0]) if batch.dim() > 0 else None
+    if isinstance(batch, Mapping):
+        for value in batch.values():
+            length = batch_length(value)
+            if length is not None:
+                return length
+        return None
+    if isinstance(batch, (list, tuple)):
+        for value in batch:
+            length = batch_length(value)
+            if length is not None:
+                return length
+        return None
+    return None
+
+
+def _is_leaf_list(value: Any) -> bool:
+    """A list of plain values (e.g. strings collated into a list), one per row."""
+    return isinstance(value, list) and all(
+        not isinstance(item, (torch.Tensor, Mapping, list, tuple)) for item in value
+    )
+
+
+def substitute_rows(batch: Any, row: Any, positions: Sequence[int], rows: int, path: str = "batch"
+                    ) -> Any:
+    """Return ``batch`` with rows ``positions`` replaced by row 0 of the one-row batch ``row``.
+
+    Only the leaves that change are copied (cloned); everything else is shared with ``batch``.
+    ``rows`` is the batch's number of rows. Structures that do not line up raise LockstepError.
+    """
+    if isinstance(batch, torch.Tensor):
+        if not isinstance(row, torch.Tensor):
+            raise LockstepError(f"{path}: the batch holds a tensor but the replacement holds "
+                                f"{type(row).__name__}")
+        if batch.dim() == 0 or batch.shape[0] != rows:
+            raise LockstepError(f"{path}: tensor of shape {tuple(batch.shape)} has no row "
+                                f"dimension of size {rows}; cannot substitute a row")
+        if row.dim() == 0 or row.shape[0] != 1 or row.shape[1:] != batch.shape[1:]:
+            raise LockstepError(f"{path}: replacement row of shape {tuple(row.shape)} does not fit "
+                                f"batch rows of shape {tuple(batch.shape[1:])}")
+        out = batch.clone()
+        replacement = row[0].to(dtype=batch.dtype, device=batch.device)
+        for position in positions:
+            out[position] = replacement
+        return out
+    if isinstance(batch, Mapping):
+        if not isinstance(row, Mapping) or set(row.keys()) != set(batch.keys()):
+            raise LockstepError(f"{path}: replacement keys do not match the batch keys "
+                                f"{sorted(map(str, batch.keys()))}")
+        changed = {key: substitute_rows(value, row[key], positions, rows, f"{path}[{key!r}]")
+                   for key, value in batch.items()}
+        try:
+            return type(batch)(changed)
+        except TypeError:
+            return changed
+    if isinstance(batch, (list, tuple)):
+        if _is_leaf_list(batch) and len(batch) == rows and isinstance(row, list) and len(row) == 1:
+            out_list = list(batch)
+            for position in positions:
+                out_list[position] = row[0]
+            return out_list
+        if not isinstance(row, (list, tuple)) or len(row) != len(batch):
+            raise LockstepError(f"{path}: replacement structure (length "
+                                f"{len(row) if isinstance(row, (list, tuple)) else 'n/a'}) does "
+                                f"not match the batch (length {len(batch)})")
+        items = [substitute_rows(value, other, positions, rows, f"{path}[{number}]")
+                 for number, (value, other) in enumerate(zip(batch, row))]
+        if isinstance(batch, tuple):
+            if hasattr(batch, "_fields"):  # namedtuple
+                return type(batch)(*items)
+            return tuple(items)
+        return items
+    # A plain value shared by the whole batch (e.g. a flag): it must agree with the replacement.
+    if batch != row:
+        raise LockstepError(f"{path}: non-tensor value {batch!r} differs from the replacement's "
+                            f"{row!r} and is not one value per row")
+    return batch
+
+
+def select_rows(batch: Any, rows: slice | Sequence[int], length: int) -> Any:
+    """The sub-batch of ``rows`` (a slice or index list) of a collated batch of ``length`` rows."""
+    if isinstance(batch, torch.Tensor):
+        if batch.dim() > 0 and batch.shape[0] == length:
+            return batch[rows] if isinstance(rows, slice) else batch[list(rows)]
+        return batch
+    if isinstance(batch, Mapping):
+        return {key: select_rows(value, rows, length) for key, value in batch.items()}
+    if isinstance(batch, (list, tuple)):
+        if _is_leaf_list(batch) and len(batch) == length:
+            return batch[rows] if isinstance(rows, slice) else [batch[i] for i in rows]
+        items = [select_rows(value, rows, length) for value in batch]
+        if isinstance(batch, tuple):
+            return type(batch)(*items) if hasattr(batch, "_fields") else tuple(items)
+        return items
+    return batch
+
+
+@dataclass
+class StepGroup:
+    """What the main run did between two optimizer steps: one or more yielded batches."""
+
+    batches: list[Any]
+    indices: list[np.ndarray]
+    rng_states: list[torch.Tensor]
+    buffers: dict[str, torch.Tensor] | None = None  # main buffers before the group's first forward
+
+    def all_indices(self) -> np.ndarray:
+        if not self.indices:
+            return np.zeros(0, dtype=np.int64)
+        return np.concatenate(self.indices)
+
+
+LossOf = Callable[[nn.Module, Any], torch.Tensor]
+
+
+class Shadow:
+    """One neighbouring run: its own model, optimizer and BatchNorm buffers."""
+
+    def __init__(self, spec: NeighbourSpec, model: nn.Module, optimizer: torch.optim.Optimizer,
+                 row: Any, label: str) -> None:
+        self.spec = spec
+        self.model = model
+        self.optimizer = optimizer
+        self.row = row              # the replacement collated as a one-row batch
+        self.label = label
+        self.forked = False
+        self.forked_at: int | None = None
+        self.fault: str | None = None   # set when the shadow hit NaN/inf and was frozen
+
+    @property
+    def active(self) -> bool:
+        return self.forked and self.fault is None
+
+
+def trainable_parameters(model: nn.Module) -> list[tuple[str, nn.Parameter]]:
+    return [(name, p) for name, p in model.named_parameters() if p.requires_grad]
+
+
+class PerShadowEngine:
+    """Steps each shadow as its own module with its own optimizer (exact for any optimizer)."""
+
+    name = "per_shadow"
+
+    def __init__(self, main_model: nn.Module, main_optimizer: torch.optim.Optimizer,
+                 loss_of: LossOf, before_step: Callable[[nn.Module], Any] | None) -> None:
+        self.main_model = main_model
+        self.main_optimizer = main_optimizer
+        self.loss_of = loss_of
+        self.before_step = before_step
+        params = list(main_model.parameters())
+        position = {id(p): k for k, p in enumerate(params)}
+        self.group_positions: list[list[int]] = []
+        for group in main_optimizer.param_groups:
+            try:
+                self.group_positions.append([position[id(p)] for p in group["params"]])
+            except KeyError:
+                raise LockstepError("the optimizer holds parameters that are not the model's: "
+                                    "pass the optimizer built over model.parameters()") from None
+        self.shadows: list[Shadow] = []
+
+    # -- construction ------------------------------------------------------------------------
+    def _mirror_optimizer(self, model: nn.Module) -> torch.optim.Optimizer:
+        params = list(model.parameters())
+        groups = []
+        for group, positions in zip(self.main_optimizer.param_groups, self.group_positions):
+            settings = {key: value for key, value in group.items() if key != "params"}
+            groups.append({**settings, "params": [params[k] for k in positions]})
+        try:
+            return type(self.main_optimizer)(groups)
+        except Exception as error:  # noqa: BLE001 - report the optimizer we cannot rebuild
+            raise LockstepError(
+                f"cannot mirror optimizer {type(self.main_optimizer).__name__} over a shadow's "
+                f"parameters ({error}); use a torch.optim optimizer constructible from its "
+                "parameter groups") from error
+
+    def add_shadow(self, spec: NeighbourSpec, row: Any, label: str) -> Shadow:
+        with torch.no_grad():
+            model = copy.deepcopy(self.main_model)
+        for p in model.parameters():
+            p.grad = None
+        shadow = Shadow(spec, model, self._mirror_optimizer(model), row, label)
+        self.shadows.append(shadow)
+        return shadow
+
+    def module_of(self, shadow: Shadow) -> nn.Module:
+        """A module holding the shadow's current parameters and buffers (for evaluation)."""
+        return shadow.model
+
+    def parameters_of(self, shadow: Shadow) -> dict[str, torch.Tensor]:
+        """The shadow's trainable parameters by name, matching ``main_model.named_parameters()``."""
+        return dict(shadow.model.named_parameters())
+
+    def remove_shadow(self, shadow: Shadow) -> None:
+        self.shadows.remove(shadow)
+
+    # -- fork ---------------------------------------------------------------------------------
+    def fork(self, shadow: Shadow, step: int, buffers: Mapping[str, torch.Tensor] | None) -> None:
+        """Make ``shadow`` an exact copy of the main run as it stands before step ``step``."""
+        with torch.no_grad():
+            for mine, theirs in zip(shadow.model.parameters(), self.main_model.parameters()):
+                mine.copy_(theirs)
+            main_buffers = dict(self.main_model.named_buffers())
+            for name, mine in shadow.model.named_buffers():
+                source = buffers[name] if buffers is not None and name in buffers else \
+                    main_buffers[name]
+                mine.copy_(source)
+        state = copy.deepcopy(self.main_optimizer.state_dict())
+        shadow.optimizer.load_state_dict(state)
+        shadow.forked = True
+        shadow.forked_at = step
+
+    # -- stepping -----------------------------------------------------------------------------
+    def _sync_hyperparameters(self, shadow: Shadow) -> None:
+        for main_group, group in zip(self.main_optimizer.param_groups,
+                                     shadow.optimizer.param_groups):
+            for key, value in main_group.items():
+                if key != "params":
+                    group[key] = value
+
+    def step(self, shadows: Sequence[Shadow], group: StepGroup, step: int) -> list[Shadow]:
+        """Take one optimizer step on each shadow, replaying the group's batches and RNG states.
+
+        Returns the shadows that hit a non-finite loss or parameter at this step (now frozen).
+        """
+        faulted = []
+        for shadow in shadows:
+            for p in shadow.model.parameters():
+                p.grad = None
+            finite = True
+            with torch.enable_grad():
+                for batch, indices, rng_state in zip(group.batches, group.indices,
+                                                     group.rng_states):
+                    positions = np.flatnonzero(indices == shadow.spec.index)
+                    if positions.size:
+                        batch = substitute_rows(batch, shadow.row, positions.tolist(),
+                                                len(indices))
+                    torch.set_rng_state(rng_state)
+                    loss = self.loss_of(shadow.model, batch)
+                    if not torch.isfinite(loss.detach()).all():
+                        finite = False
+                        break
+                    loss.backward()
+            if finite:
+                if self.before_step is not None:
+                    self.before_step(shadow.model)
+                self._sync_hyperparameters(shadow)
+                shadow.optimizer.step()
+                with torch.no_grad():
+                    finite = all(bool(torch.isfinite(p).all())
+                                 for p in shadow.model.parameters())
+            if not finite:
+                shadow.fault = f"non-finite loss or parameters at step {step}"
+                faulted.append(shadow)
+        return faulted

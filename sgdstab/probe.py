@@ -1,0 +1,170 @@
+"""Probe evaluation: per-example losses of the main model and the shadows at an epoch's end.
+
+The probe holds every swapped-out and swapped-in example plus a seeded sample of training and
+replacement examples. From the per-example losses it computes the loss-difference estimate of the
+stability constant and the on-average replace-one estimate of the generalization gap
+(Shalev-Shwartz, Shamir, Srebro & Sridharan 2010; Shalev-Shwartz & Ben-David ch. 13).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import torch
+from torch import nn
+
+from .lockstep import preserved_rng, select_rows
+
+__all__ = ["ProbeRows", "ProbeSummary", "PerExampleLoss", "evaluation_mode", "summarise_probe"]
+
+KINDS = ("out", "in", "train", "holdout", "probe")
+
+
+@dataclass
+class ProbeRows:
+    """Collated probe examples with a kind per row; ``owner`` is the shadow of out/in rows."""
+
+    chunks: list[Any]
+    lengths: list[int]
+    kinds: np.ndarray
+    owner: np.ndarray
+
+    @classmethod
+    def build(cls, examples: Sequence[Any], kinds: Sequence[str], owners: Sequence[int],
+              collate: Callable[[list[Any]], Any], chunk: int = 256) -> ProbeRows:
+        chunks, lengths = [], []
+        with preserved_rng():
+            for start in range(0, len(examples), chunk):
+                part = list(examples[start:start + chunk])
+                chunks.append(collate(part))
+                lengths.append(len(part))
+        return cls(chunks, lengths, np.asarray(kinds), np.asarray(owners, dtype=np.int64))
+
+
+class evaluation_mode:
+    """Context: model in eval mode, no grad, RNG untouched; every module's flag restored after."""
+
+    def __init__(self, model: nn.Module) -> None:
+        self.model = model
+
+    def __enter__(self) -> nn.Module:
+        self.flags = [(m, m.training) for m in self.model.modules()]
+        self.no_grad = torch.no_grad()
+        self.no_grad.__enter__()
+        self.rng = preserved_rng()
+        self.rng.__enter__()
+        self.model.eval()
+        return self.model
+
+    def __exit__(self, *exc: object) -> None:
+        for module, flag in self.flags:
+            module.training = flag
+        self.rng.__exit__(*exc)
+        self.no_grad.__exit__(*exc)
+
+
+class PerExampleLoss:
+    """Per-example losses: ``loss_fn(..., reduction="none")`` when it supports it, else a loop."""
+
+    def __init__(self, loss_fn: Callable[..., torch.Tensor] | None,
+                 step_loss: Callable[[nn.Module, Any], torch.Tensor] | None) -> None:
+        self.loss_fn = loss_fn
+        self.step_loss = step_loss
+        self.vectorised: bool | None = None if loss_fn is not None else False
+
+    def _one(self, model: nn.Module, batch: Any) -> torch.Tensor:
+        if self.step_loss is not None:
+            return self.step_loss(model, batch)
+        inputs, targets = batch
+        return self.loss_fn(model(inputs), targets)
+
+    def __call__(self, model: nn.Module, batch: Any, length: int) -> np.ndarray:
+        if self.vectorised is not False:
+            inputs, targets = batch
+            try:
+                losses = self.loss_fn(model(inputs), targets, reduction="none")
+                ok = isinstance(losses, torch.Tensor) and losses.dim() >= 1 and \
+                    losses.shape[0] == length
+            except TypeError:
+                ok = False
+            self.vectorised = ok
+            if ok:
+                return losses.reshape(length, -1).double().mean(dim=1).cpu().numpy()
+        values = [float(self._one(model, select_rows(batch, slice(r, r + 1), length)))
+                  for r in range(length)]
+        return np.asarray(values, dtype=np.float64)
+
+
+def model_losses(model: nn.Module, probe: ProbeRows, per_example: PerExampleLoss) -> np.ndarray:
+    with evaluation_mode(model):
+        parts = [per_example(model, chunk, length)
+                 for chunk, length in zip(probe.chunks, probe.lengths)]
+    return np.concatenate(parts) if parts else np.zeros(0)
+
+
+@dataclass(frozen=True)
+class ProbeSummary:
+    loss_difference_max: float | None
+    loss_difference_mean: float | None
+    gap_estimate: float | None
+    gap_stderr: float | None
+    train_loss: float | None
+    holdout_loss: float | None
+    notes: tuple[str, ...]
+
+
+def _mean(values: np.ndarray) -> float | None:
+    return float(values.mean()) if values.size else None
+
+
+def summarise_probe(main: np.ndarray, shadows: Sequence[np.ndarray], probe: ProbeRows,
+                    fresh_replacements: bool, fresh_reason: str,
+                    difference_kinds: Sequence[str]) -> ProbeSummary:
+    """Loss differences, gap estimate with standard error, and the main model's probe losses.
+
+    Gap estimate: for shadow k swapping z_i for z', the sample
+    ``((f(w'_k; z_i) - f(w; z_i)) + (f(w; z') - f(w'_k; z'))) / 2``; mean over shadows, standard
+    error ``std(ddof=1) / sqrt(K)``. Unbiased for the expected gap only when z' is a fresh draw.
+    """
+    notes: list[str] = []
+    use = np.isin(probe.kinds, list(difference_kinds))
+    if shadows:
+        differences = np.abs(np.stack([s[use] for s in shadows]) - main[use][None, :])
+        finite = differences[np.isfinite(differences)]
+        difference_max = float(finite.max()) if finite.size else None
+        difference_mean = float(finite.mean()) if finite.size else None
+    else:
+        difference_max = difference_mean = None
+        notes.append("loss difference: no shadows")
+    gap = stderr = None
+    if not fresh_replacements:
+        notes.append(f"gap estimate not applicable: {fresh_reason}")
+    elif shadows:
+        samples = []
+        for k, losses in enumerate(shadows):
+            out_rows = (probe.kinds == "out") & (probe.owner == k)
+            in_rows = (probe.kinds == "in") & (probe.owner == k)
+            sample = 0.5 * ((losses[out_rows] - main[out_rows]).mean()
+                            + (main[in_rows] - losses[in_rows]).mean())
+            samples.append(sample)
+        samples_array = np.asarray(samples)
+        if np.all(np.isfinite(samples_array)):
+            gap = float(samples_array.mean())
+            if len(samples) >= 2:
+                stderr = float(samples_array.std(ddof=1) / math.sqrt(len(samples)))
+            else:
+                notes.append("gap standard error needs at least 2 shadows")
+        else:
+            notes.append("gap estimate: a shadow's loss is not finite")
+    train_rows = np.isin(probe.kinds, ["out", "train"])
+    holdout_rows = np.isin(probe.kinds, ["in", "holdout"])
+    train_loss = _mean(main[train_rows])
+    holdout_loss = _mean(main[holdout_rows]) if fresh_replacements else None
+    if not fresh_replacements:
+        notes.append("holdout loss not available: no held-out replacement set")
+    return ProbeSummary(difference_max, difference_mean, gap, stderr, train_loss, holdout_loss,
+                        tuple(notes))

@@ -1,0 +1,86 @@
+"""EpochReading: what the tracker measured and computed at the end of one epoch."""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+__all__ = ["EpochReading", "read_history"]
+
+
+@dataclass(frozen=True)
+class EpochReading:
+    """One epoch's measurements (see README, "What the numbers mean").
+
+    A value that could not be computed is ``None`` and ``notes`` says why.
+    """
+
+    epoch: int
+    steps: int
+    divergence: tuple[float, ...]
+    audit_divergence: float | None
+    layer_divergence: Mapping[str, float]
+    loss_difference_max: float | None
+    loss_difference_mean: float | None
+    gap_estimate: float | None
+    gap_stderr: float | None
+    train_loss: float | None
+    holdout_loss: float | None
+    path_bound: tuple[float | None, ...] = ()
+    expected_bound: float | None = None
+    high_probability_gap: float | None = None
+    uniform_stability: float | None = None
+    bounds: Mapping[str, Any] = field(default_factory=dict)
+    constants: Mapping[str, Any] | None = None
+    assumption_violated: bool = False
+    shadow_faults: tuple[str | None, ...] = ()
+    notes: tuple[str, ...] = ()
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-friendly dict (non-finite floats become None)."""
+        return _json_safe(asdict(self))
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict(), sort_keys=True)
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> EpochReading:
+        known = {name: data[name] for name in cls.__dataclass_fields__ if name in data}
+        for name in ("divergence", "path_bound", "shadow_faults", "notes"):
+            if name in known and known[name] is not None:
+                known[name] = tuple(known[name])
+        return cls(**known)
+
+
+def _json_safe(value: Any) -> Any:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, Mapping):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_safe(v) for v in value]
+    return value
+
+
+def read_history(path: str | Path) -> list[dict[str, Any]]:
+    """Read history.jsonl (a file or a run directory). A damaged line is skipped with a warning."""
+    path = Path(path)
+    if path.is_dir():
+        path = path / "history.jsonl"
+    records = []
+    with open(path, encoding="utf-8") as handle:
+        lines = handle.read().split("\n")
+    for number, line in enumerate(lines, start=1):
+        if not line.strip():
+            continue
+        try:
+            records.append(json.loads(line))
+        except json.JSONDecodeError:
+            warnings.warn(f"{path}: line {number} is damaged or truncated (an interrupted write?); "
+                          "skipped", stacklevel=2)
+    return records

@@ -1,0 +1,107 @@
+"""Writers for a run directory: history.jsonl, run.json and TensorBoard event files.
+
+A sink only writes what it is handed; it never computes a number of its own.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Iterator, Mapping
+from pathlib import Path
+from typing import Any
+
+from .reading import EpochReading
+
+__all__ = ["JsonlSink", "TensorBoardSink", "RunSinks", "scalar_tags"]
+
+
+def scalar_tags(reading: EpochReading) -> Iterator[tuple[str, float]]:
+    """The (tag, value) pairs a reading contributes to TensorBoard, grouped by theme."""
+    for k, value in enumerate(reading.divergence):
+        yield f"divergence/shadow_{k}", value
+    if reading.audit_divergence is not None:
+        yield "divergence/null_swap_audit", reading.audit_divergence
+    for name, value in reading.layer_divergence.items():
+        yield f"layer_divergence/{name}", value
+    if reading.loss_difference_max is not None:
+        yield "loss_difference/max", reading.loss_difference_max
+    if reading.loss_difference_mean is not None:
+        yield "loss_difference/mean", reading.loss_difference_mean
+    if reading.gap_estimate is not None:
+        yield "gap/replace_one_estimate", reading.gap_estimate
+        if reading.gap_stderr is not None:
+            yield "gap/replace_one_upper", reading.gap_estimate + reading.gap_stderr
+            yield "gap/replace_one_lower", reading.gap_estimate - reading.gap_stderr
+            yield "gap/replace_one_stderr", reading.gap_stderr
+    if reading.train_loss is not None:
+        yield "loss/train_probe", reading.train_loss
+    if reading.holdout_loss is not None:
+        yield "loss/holdout_probe", reading.holdout_loss
+        if reading.train_loss is not None:
+            yield "gap/holdout_minus_train", reading.holdout_loss - reading.train_loss
+    for k, value in enumerate(reading.path_bound):
+        if value is not None:
+            yield f"bound/path_shadow_{k}", value
+    if reading.expected_bound is not None:
+        yield "bound/expected_stability", reading.expected_bound
+    if reading.uniform_stability is not None:
+        yield "bound/uniform_stability", reading.uniform_stability
+    if reading.high_probability_gap is not None:
+        yield "bound/high_probability_gap", reading.high_probability_gap
+
+
+class JsonlSink:
+    """Appends one JSON object per line, flushed and fsynced so a crash loses no finished epoch."""
+
+    def __init__(self, path: str | Path) -> None:
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+
+    def write(self, record: Mapping[str, Any]) -> None:
+        line = json.dumps(record, sort_keys=True)
+        with open(self.path, "a", encoding="utf-8") as handle:
+            handle.write(line + "\n")
+            handle.flush()
+            os.fsync(handle.fileno())
+
+
+class TensorBoardSink:
+    """Writes a reading's scalars with torch.utils.tensorboard.SummaryWriter, step = epoch."""
+
+    def __init__(self, log_dir: str | Path) -> None:
+        from torch.utils.tensorboard import SummaryWriter
+
+        self.writer = SummaryWriter(log_dir=str(log_dir))
+        self.closed = False
+
+    def write(self, reading: EpochReading) -> None:
+        for tag, value in scalar_tags(reading):
+            self.writer.add_scalar(tag, value, global_step=reading.epoch)
+        self.writer.flush()
+
+    def close(self) -> None:
+        if not self.closed:
+            self.writer.close()
+            self.closed = True
+
+
+class RunSinks:
+    """Everything a run directory receives: run.json, history.jsonl and TensorBoard events."""
+
+    def __init__(self, log_dir: str | Path) -> None:
+        self.log_dir = Path(log_dir)
+        self.log_dir.mkdir(parents=True, exist_ok=True)
+        self.history = JsonlSink(self.log_dir / "history.jsonl")
+        self.tensorboard = TensorBoardSink(self.log_dir)
+
+    def write_run(self, description: Mapping[str, Any]) -> None:
+        with open(self.log_dir / "run.json", "w", encoding="utf-8") as handle:
+            json.dump(description, handle, indent=2, sort_keys=True)
+
+    def write(self, reading: EpochReading) -> None:
+        self.history.write(reading.to_dict())
+        self.tensorboard.write(reading)
+
+    def close(self) -> None:
+        self.tensorboard.close()

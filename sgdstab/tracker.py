@@ -1,0 +1,524 @@
+"""StabilityTracker: follows a user's training loop with shadows on neighbouring datasets."""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Callable, Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from torch import nn
+from torch.utils.data import DataLoader, Dataset
+from torch.utils.data._utils.collate import default_collate
+
+from .constants import Constants
+from .history import StepHistory
+from .loaders import check_train_set, recording_loader
+from .lockstep import (
+    LockstepError,
+    NeighbourSpec,
+    PerShadowEngine,
+    Shadow,
+    StepGroup,
+    preserved_rng,
+    select_rows,
+    trainable_parameters,
+)
+from .probe import PerExampleLoss, ProbeRows, model_losses, summarise_probe
+from .reading import EpochReading
+from .sinks import RunSinks
+
+__all__ = ["StabilityTracker", "LockstepWarning", "AssumptionWarning", "ShadowFaultWarning"]
+
+
+class LockstepWarning(UserWarning):
+    """The null-swap audit found that the shadows do not follow the main run exactly."""
+
+
+class AssumptionWarning(UserWarning):
+    """A measured divergence exceeds its proved bound: declared constants or convexity are wrong."""
+
+
+class ShadowFaultWarning(UserWarning):
+    """A shadow hit a non-finite loss or parameter and was frozen."""
+
+
+_PLAIN_SGD_KEYS = ("momentum", "nesterov", "maximize")
+
+
+def _optimizer_reason(optimizer: torch.optim.Optimizer) -> str:
+    """Why the published bounds do not apply to this optimizer ('' when they do)."""
+    if type(optimizer) is not torch.optim.SGD:
+        return (f"optimizer is {type(optimizer).__name__}: the bounds are proved for plain SGD "
+                "(the tracker still measures)")
+    for group in optimizer.param_groups:
+        if group.get("momentum", 0):
+            return (f"SGD with momentum {group['momentum']}: the bounds are proved for plain SGD "
+                    "(the tracker still measures)")
+        if group.get("nesterov", False):
+            return "SGD with Nesterov momentum: the bounds are proved for plain SGD"
+        if group.get("maximize", False):
+            return "SGD with maximize=True: the bounds are stated for minimisation"
+    return ""
+
+
+class StabilityTracker:
+    """Trains ``shadows`` copies of ``model`` on neighbouring datasets in lockstep with your loop.
+
+    Use ``for batch in tracker.batches(loader)`` in place of ``for batch in loader`` and call
+    ``tracker.finish_epoch()`` after each epoch; the shadows step inside ``optimizer.step()``.
+    """
+
+    def __init__(
+        self,
+        model: nn.Module,
+        optimizer: torch.optim.Optimizer,
+        *,
+        train_set: Dataset,
+        loss_fn: Callable[..., torch.Tensor] | None = None,
+        step_loss: Callable[[nn.Module, Any], torch.Tensor] | None = None,
+        shadows: int = 4,
+        swap: Sequence[tuple[int, Any]] | None = None,
+        replacements: Dataset | None = None,
+        probe_set: Dataset | None = None,
+        log_dir: str | Path | None = None,
+        seed: int = 0,
+        audit: bool = True,
+        constants: Constants | str | None = None,
+        delta: float = 0.05,
+        before_step: Callable[[nn.Module], Any] | None = None,
+        lazy_fork: bool = True,
+        probe_size: int = 256,
+    ) -> None:
+        if not isinstance(model, nn.Module):
+            raise TypeError("model must be a torch.nn.Module")
+        if not trainable_parameters(model):
+            raise ValueError("the model has no trainable parameters (requires_grad=True): there is "
+                             "nothing whose stability could be tracked")
+        if not isinstance(optimizer, torch.optim.Optimizer):
+            raise TypeError("optimizer must be a torch.optim.Optimizer")
+        if isinstance(optimizer, torch.optim.LBFGS):
+            raise LockstepError("LBFGS steps with a closure that re-evaluates the loss; the "
+                                "tracker cannot mirror it")
+        if (loss_fn is None) == (step_loss is None):
+            raise ValueError("give exactly one of loss_fn=(outputs, targets) -> loss or "
+                             "step_loss=(model, batch) -> loss")
+        if not 0.0 < float(delta) < 1.0 or math.isnan(float(delta)):
+            raise ValueError(f"delta must lie in (0, 1), got {delta}")
+        self.n = check_train_set(train_set)
+        if self.n < 2:
+            raise ValueError(f"the training set has {self.n} example(s); neighbouring datasets "
+                             "need at least 2")
+        if isinstance(constants, str) and constants != "estimate":
+            raise ValueError("constants must be a Constants, 'estimate' or None")
+        self.model = model
+        self.optimizer = optimizer
+        self.train_set = train_set
+        self.loss_fn = loss_fn
+        self.step_loss = step_loss
+        self.replacements = replacements
+        self.probe_set = probe_set
+        self.seed = int(seed)
+        self.delta = float(delta)
+        self.probe_size = int(probe_size)
+        self.lazy_fork = bool(lazy_fork)
+        self.declared_constants = constants if isinstance(constants, Constants) else None
+        self.estimate_constants = constants == "estimate"
+        self._estimated: Constants | None = None
+        self.optimizer_reason = _optimizer_reason(optimizer)
+        self._rng = np.random.default_rng(self.seed)
+        self.specs = self._neighbour_specs(shadows, swap)
+        self.engine = PerShadowEngine(model, optimizer, self._loss_of, before_step)
+        self.shadows: list[Shadow] = [self.engine.add_shadow(spec, None, f"shadow_{k}")
+                                      for k, spec in enumerate(self.specs)]
+        self.audit_shadow: Shadow | None = None
+        if audit:
+            placeholder = NeighbourSpec(-1, None, "self")
+            self.audit_shadow = self.engine.add_shadow(placeholder, None, "audit")
+        self.history = StepHistory(shadows=len(self.shadows))
+        self.epoch = 0
+        self.steps = 0
+        self._group = StepGroup([], [], [])
+        self._collate: Callable[[list[Any]], Any] = default_collate
+        self._collate_rows_for: Any = None
+        self._probe: ProbeRows | None = None
+        self._per_example = PerExampleLoss(loss_fn, step_loss)
+        self._warned: set[str] = set()
+        self._assumption_violated = False
+        self._checked_batch = False
+        self.sinks = RunSinks(log_dir) if log_dir is not None else None
+        if not self.lazy_fork:
+            for shadow in self.shadows:
+                self.engine.fork(shadow, 0, None)
+        self._hooks = [optimizer.register_step_pre_hook(self._before_main_step),
+                       optimizer.register_step_post_hook(self._after_main_step)]
+        if self.sinks is not None:
+            self.sinks.write_run(self.describe())
+
+    # -- set-up ---------------------------------------------------------------------------------
+    def _fetch(self, dataset: Any, index: int) -> Any:
+        with preserved_rng():
+            return dataset[int(index)]
+
+    def _neighbour_specs(self, shadows: int, swap: Sequence[tuple[int, Any]] | None
+                         ) -> list[NeighbourSpec]:
+        if swap is not None:
+            specs, seen = [], set()
+            for entry in swap:
+                index, example = entry
+                index = int(index)
+                if not 0 <= index < self.n:
+                    raise IndexError(f"swap index {index} is outside the training set "
+                                     f"(0..{self.n - 1})")
+                if index in seen:
+                    raise ValueError(f"swap index {index} appears twice")
+                seen.add(index)
+                specs.append(NeighbourSpec(index, example, "explicit"))
+            return specs
+        if isinstance(shadows, bool) or not isinstance(shadows, int) or shadows < 0:
+            raise ValueError(f"shadows must be a whole number >= 0, got {shadows!r}")
+        if shadows > self.n:
+            raise ValueError(f"shadows={shadows} is larger than the training set ({self.n})")
+        indices = self._rng.choice(self.n, size=shadows, replace=False)
+        if self.replacements is not None:
+            size = len(self.replacements)
+            if size < 1:
+                raise ValueError("the replacement set is empty")
+            sources = self._rng.choice(size, size=shadows, replace=shadows > size)
+            return [NeighbourSpec(int(i), self._fetch(self.replacements, j), "holdout", int(j))
+                    for i, j in zip(indices, sources)]
+        others = np.setdiff1d(np.arange(self.n), indices)
+        sources = self._rng.choice(others, size=shadows, replace=shadows > len(others))
+        return [NeighbourSpec(int(i), self._fetch(self.train_set, j), "train", int(j))
+                for i, j in zip(indices, sources)]
+
+    def _loss_of(self, model: nn.Module, batch: Any) -> torch.Tensor:
+        if self.step_loss is not None:
+            loss = self.step_loss(model, batch)
+        else:
+            if not isinstance(batch, (list, tuple)) or len(batch) != 2:
+                raise LockstepError("loss_fn expects (inputs, targets) batches; for other batch "
+                                    "structures pass step_loss=(model, batch) -> loss")
+            inputs, targets = batch
+            loss = self.loss_fn(model(inputs), targets)
+        if not isinstance(loss, torch.Tensor) or loss.numel() != 1:
+            raise LockstepError("the loss must be a scalar tensor (mean-reduced), got "
+                                f"{getattr(loss, 'shape', type(loss).__name__)}")
+        return loss.reshape(())
+
+    def _set_rows(self, collate: Callable[[list[Any]], Any]) -> None:
+        if self._collate_rows_for is collate:
+            return
+        self._collate = collate
+        with preserved_rng():
+            for shadow in self.shadows:
+                shadow.row = collate([shadow.spec.replacement])
+        self._collate_rows_for = collate
+        self._probe = None
+
+    # -- the loop -------------------------------------------------------------------------------
+    def batches(self, loader: DataLoader) -> Iterator[Any]:
+        """Yield exactly the loader's batches, recording their indices and RNG states."""
+        sibling, recorder = recording_loader(loader, self.train_set)
+        self._set_rows(loader.collate_fn)
+        for batch in sibling:
+            indices = recorder.drawn.popleft()
+            self._on_batch(batch, indices)
+            yield batch
+
+    def _check_batch(self, batch: Any) -> None:
+        device = next(p for _, p in trainable_parameters(self.model)).device
+        tensors: list[torch.Tensor] = []
+        stack = [batch]
+        while stack:
+            item = stack.pop()
+            if isinstance(item, torch.Tensor):
+                tensors.append(item)
+            elif isinstance(item, dict):
+                stack.extend(item.values())
+            elif isinstance(item, (list, tuple)):
+                stack.extend(item)
+        for tensor in tensors:
+            if tensor.device != device:
+                raise LockstepError(f"a batch tensor is on {tensor.device} but the model is on "
+                                    f"{device}; move data inside step_loss instead")
+        self._checked_batch = True
+
+    def _on_batch(self, batch: Any, indices: np.ndarray) -> None:
+        if not self._checked_batch:
+            self._check_batch(batch)
+        if self.audit_shadow is not None and self.audit_shadow.spec.index < 0:
+            index = int(indices[0])
+            row = select_rows(batch, [0], len(indices))
+            self.audit_shadow.spec = NeighbourSpec(index, None, "self", index)
+            self.audit_shadow.row = row
+        group = self._group
+        if not group.batches and any(not s.forked for s in self.engine.shadows):
+            buffers = dict(self.model.named_buffers())
+            if buffers:
+                group.buffers = {name: b.detach().clone() for name, b in buffers.items()}
+        group.batches.append(batch)
+        group.indices.append(indices)
+        group.rng_states.append(torch.get_rng_state())
+
+    def _before_main_step(self, optimizer: torch.optim.Optimizer, args: Any, kwargs: Any) -> None:
+        group = self._group
+        if not group.batches:
+            return
+        drawn = group.all_indices()
+        for shadow in self.engine.shadows:
+            if not shadow.forked and shadow.spec.index in drawn:
+                self.engine.fork(shadow, self.steps, group.buffers)
+
+    def _after_main_step(self, optimizer: torch.optim.Optimizer, args: Any, kwargs: Any) -> None:
+        group, self._group = self._group, StepGroup([], [], [])
+        if not group.batches:
+            self._warn_once("unrecorded", "optimizer.step() ran without a batch from "
+                            "tracker.batches(): the shadows skipped this step and no longer "
+                            "follow the main run", LockstepWarning)
+            return
+        active = [s for s in self.engine.shadows if s.active]
+        after = torch.get_rng_state()
+        try:
+            with preserved_rng():
+                faulted = self.engine.step(active, group, self.steps)
+        finally:
+            torch.set_rng_state(after)
+        for shadow in faulted:
+            warnings.warn(f"{shadow.label} (swapping index {shadow.spec.index}) hit a non-finite "
+                          f"loss or parameter at step {self.steps}; it is frozen and marked, the "
+                          "other shadows and the main run go on", ShadowFaultWarning, stacklevel=3)
+        drawn = group.all_indices()
+        rates = {float(g["lr"]) for g in optimizer.param_groups}
+        if len(rates) > 1:
+            self._warn_once("lrs", "parameter groups use different step sizes; the bounds use the "
+                            "largest", UserWarning)
+        hit_counts = [int(np.count_nonzero(drawn == s.spec.index)) for s in self.shadows]
+        self.history.record(max(rates), len(drawn), drawn, hit_counts)
+        self.steps += 1
+
+    def _warn_once(self, key: str, message: str, category: type[Warning]) -> None:
+        if key not in self._warned:
+            self._warned.add(key)
+            warnings.warn(message, category, stacklevel=4)
+
+    # -- readings -------------------------------------------------------------------------------
+    def _divergences(self) -> tuple[list[float], dict[str, float], float | None]:
+        main = trainable_parameters(self.model)
+        layer: dict[str, float] = {name: 0.0 for name, _ in main}
+        values = []
+        for shadow in self.shadows:
+            values.append(self._divergence(shadow, main, layer))
+        audit = None
+        if self.audit_shadow is not None:
+            audit = self._divergence(self.audit_shadow, main, None)
+        return values, layer, audit
+
+    def _divergence(self, shadow: Shadow, main: list[tuple[str, nn.Parameter]],
+                    layer: dict[str, float] | None) -> float:
+        if not shadow.forked:
+            return 0.0
+        total = 0.0
+        theirs = self.engine.parameters_of(shadow)
+        with torch.no_grad():
+            for name, p in main:
+                square = float(((p.detach().double() - theirs[name].detach().double()) ** 2).sum())
+                total += square
+                if layer is not None:
+                    layer[name] = max(layer[name], math.sqrt(square))
+        return math.sqrt(total)
+
+    def _build_probe(self) -> ProbeRows:
+        examples, kinds, owners = [], [], []
+        for k, shadow in enumerate(self.shadows):
+            examples += [self._fetch(self.train_set, shadow.spec.index), shadow.spec.replacement]
+            kinds += ["out", "in"]
+            owners += [k, k]
+        if self.probe_set is not None:
+            for j in range(len(self.probe_set)):
+                examples.append(self._fetch(self.probe_set, j))
+                kinds.append("probe")
+                owners.append(-1)
+        sample_rng = np.random.default_rng(self.seed + 1)
+        count = min(self.probe_size, self.n)
+        for j in np.sort(sample_rng.choice(self.n, size=count, replace=False)):
+            examples.append(self._fetch(self.train_set, j))
+            kinds.append("train")
+            owners.append(-1)
+        if self.replacements is not None:
+            size = len(self.replacements)
+            for j in np.sort(sample_rng.choice(size, size=min(self.probe_size, size),
+                                               replace=False)):
+                examples.append(self._fetch(self.replacements, j))
+                kinds.append("holdout")
+                owners.append(-1)
+        return ProbeRows.build(examples, kinds, owners, self._collate)
+
+    def _fresh(self) -> tuple[bool, str]:
+        origins = {s.spec.origin for s in self.shadows}
+        if not self.shadows:
+            return False, "no shadows"
+        if origins == {"holdout"}:
+            return True, ""
+        if "train" in origins:
+            return False, ("the swapped-in examples are other training examples (duplicates), "
+                           "not fresh draws; pass replacements=<held-out set>")
+        return False, ("explicit swap replacements: their independence from the training set is "
+                       "unknown")
+
+    def finish_epoch(self) -> EpochReading:
+        """Close the epoch: measure the shadows, compute the bounds, write the sinks."""
+        notes: list[str] = []
+        if self._group.batches:
+            notes.append(f"{len(self._group.batches)} batch(es) yielded after the last "
+                         "optimizer.step() belong to no step")
+        self.epoch += 1
+        divergence, layer, audit = self._divergences()
+        if self._probe is None:
+            self._probe = self._build_probe()
+        main_losses = model_losses(self.model, self._probe, self._per_example)
+        shadow_losses = [model_losses(self.engine.module_of(s), self._probe, self._per_example)
+                         if s.forked
+                         else main_losses for s in self.shadows]
+        fresh, reason = self._fresh()
+        kinds = ("out", "in", "probe") if self.probe_set is not None else \
+            ("out", "in", "train", "holdout")
+        summary = summarise_probe(main_losses, shadow_losses, self._probe, fresh, reason, kinds)
+        notes += summary.notes
+        audit_value = self._finish_audit(audit, notes)
+        bound_fields = self._bounds(divergence, notes)
+        faults = tuple(s.fault for s in self.shadows)
+        for k, fault in enumerate(faults):
+            if fault is not None:
+                notes.append(f"shadow_{k} frozen: {fault}")
+        reading = EpochReading(
+            epoch=self.epoch, steps=self.steps, divergence=tuple(divergence),
+            audit_divergence=audit_value, layer_divergence=layer,
+            loss_difference_max=summary.loss_difference_max,
+            loss_difference_mean=summary.loss_difference_mean,
+            gap_estimate=summary.gap_estimate, gap_stderr=summary.gap_stderr,
+            train_loss=summary.train_loss, holdout_loss=summary.holdout_loss,
+            shadow_faults=faults, notes=tuple(notes), **bound_fields)
+        if self.sinks is not None:
+            self.sinks.write(reading)
+        return reading
+
+    def _finish_audit(self, audit: float | None, notes: list[str]) -> float | None:
+        shadow = self.audit_shadow
+        if shadow is None or audit is None:
+            return None
+        if not shadow.forked:
+            notes.append("null-swap audit inconclusive: its example was never drawn")
+        elif audit != 0.0:
+            warnings.warn(
+                f"LOCKSTEP BROKEN: the null-swap shadow (example {shadow.spec.index} swapped with "
+                f"itself) drifted {audit:.3e} from the main run, where it must stay at exactly 0. "
+                "The divergences are not trustworthy. Likely causes: a non-deterministic op, RNG "
+                "consumed outside the replayed region (between batches, or in code the shadows do "
+                "not run: use step_loss for in-loop augmentation), a batch mutated in place, a "
+                "loss or clipping the shadows do not repeat (see before_step).",
+                LockstepWarning, stacklevel=3)
+            notes.append(f"lockstep broken: null-swap divergence {audit:.3e}")
+        self.engine.remove_shadow(shadow)
+        self.audit_shadow = None
+        return audit
+
+    def current_constants(self) -> Constants | None:
+        """The constants the bounds use now (declared, or running-maximum estimates)."""
+        if self.estimate_constants:
+            from .constants import Constants as _Constants
+            train_rows = [self._fetch(self.train_set, j) for j in
+                          np.random.default_rng(self.seed + 2).choice(
+                              self.n, size=min(self.probe_size, self.n), replace=False)]
+            batch = self._collate(train_rows)
+            fresh = _Constants.estimate(self.model, batch, loss_fn=self.loss_fn,
+                                        step_loss=self.step_loss)
+            self._estimated = fresh if self._estimated is None else \
+                self._estimated.merged_max(fresh)
+            return self._estimated
+        return self.declared_constants
+
+    def _bounds(self, divergence: list[float], notes: list[str]) -> dict[str, Any]:
+        constants = self.current_constants()
+        if constants is None:
+            notes.append("bounds not computed: no constants given (constants=Constants(...) or "
+                         "'estimate')")
+            return {}
+        decay = max(float(g.get("weight_decay", 0.0) or 0.0) for g in self.optimizer.param_groups)
+        effective = constants.with_weight_decay(decay) if decay > 0 else constants
+        from . import bounds as bounds_module
+
+        history = self.history
+        result = bounds_module.assess_run(
+            regime=effective.regime, step_sizes=history.step_sizes(),
+            batch_sizes=history.batch_sizes(), n=self.n, lipschitz=effective.lipschitz,
+            smoothness=effective.smoothness, strong_convexity=effective.strong_convexity,
+            loss_bound=effective.loss_bound, shadow_hits=history.shadow_hits(),
+            batch_indices=history.batch_indices(), delta=self.delta,
+            not_applicable_reason=self.optimizer_reason)
+        if effective.source != "declared":
+            notes.append("bounds use ESTIMATED constants (lower estimates of L and beta): they "
+                         "are indicative, not certified")
+        violated = self._audit_assumptions(result, divergence, effective, notes)
+        return {
+            "path_bound": tuple(result.path_bound),
+            "expected_bound": result.expected.value,
+            "high_probability_gap": result.high_probability.value,
+            "uniform_stability": result.uniform_stability.value,
+            "bounds": result.to_dict(),
+            "constants": effective.to_dict(),
+            "assumption_violated": violated,
+        }
+
+    def _audit_assumptions(self, result: Any, divergence: list[float], constants: Constants,
+                           notes: list[str]) -> bool:
+        if constants.regime not in ("convex", "strongly_convex") or not result.path_applicable:
+            return False
+        scale = 1.0 + math.sqrt(sum(float((p.detach().double() ** 2).sum())
+                                    for _, p in trainable_parameters(self.model)))
+        broken = []
+        for k, (measured, bound) in enumerate(zip(divergence, result.path_bound)):
+            if bound is not None and measured > bound * (1 + 1e-5) + 1e-6 * scale:
+                broken.append(f"shadow_{k}: measured {measured:.6g} > bound {bound:.6g}")
+        if not broken:
+            return False
+        notes.append("assumption audit failed: " + "; ".join(broken))
+        if not self._assumption_violated:
+            self._assumption_violated = True
+            warnings.warn(
+                "ASSUMPTIONS VIOLATED: a shadow's measured divergence exceeds its pathwise bound ("
+                + "; ".join(broken) + f"). The declared constants (L={constants.lipschitz}, "
+                f"beta={constants.smoothness}, gamma={constants.strong_convexity}) or the "
+                f"{constants.regime} assumption are wrong for this run; its bounds do not hold.",
+                AssumptionWarning, stacklevel=4)
+        return True
+
+    # -- misc -----------------------------------------------------------------------------------
+    def describe(self) -> dict[str, Any]:
+        """The run's configuration, JSON-friendly (written to run.json)."""
+        return {
+            "n": self.n, "shadows": [s.spec.describe() for s in self.shadows],
+            "audit": self.audit_shadow is not None, "seed": self.seed, "delta": self.delta,
+            "engine": self.engine.name, "lazy_fork": self.lazy_fork,
+            "optimizer": type(self.optimizer).__name__,
+            "optimizer_reason": self.optimizer_reason,
+            "constants": (self.declared_constants.to_dict() if self.declared_constants else
+                          ("estimate" if self.estimate_constants else None)),
+        }
+
+    def close(self) -> None:
+        """Remove the optimizer hooks and close the writers. Safe to call twice."""
+        for handle in self._hooks:
+            handle.remove()
+        self._hooks = []
+        if self.sinks is not None:
+            self.sinks.close()
+
+    def __enter__(self) -> StabilityTracker:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
