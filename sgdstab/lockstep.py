@@ -220,6 +220,9 @@ class PerShadowEngine:
         self.main_optimizer = main_optimizer
         self.loss_of = loss_of
         self.before_step = before_step
+        # Called on each shadow after its backward passes and before before_step / its optimizer
+        # step; a data-parallel tracker sets it to all-reduce the shadow's gradients.
+        self.gradient_sync: Callable[[nn.Module], Any] | None = None
         params = list(main_model.parameters())
         position = {id(p): k for k, p in enumerate(params)}
         self.group_positions: list[list[int]] = []
@@ -262,6 +265,19 @@ class PerShadowEngine:
     def parameters_of(self, shadow: Shadow) -> dict[str, torch.Tensor]:
         """The shadow's trainable parameters by name, matching ``main_model.named_parameters()``."""
         return dict(shadow.model.named_parameters())
+
+    def shadow_state(self, shadow: Shadow) -> dict[str, Any]:
+        """Everything needed to restore ``shadow`` (parameters, buffers, optimizer state)."""
+        return {"model": copy.deepcopy(shadow.model.state_dict()),
+                "optimizer": copy.deepcopy(shadow.optimizer.state_dict()),
+                "forked": shadow.forked, "forked_at": shadow.forked_at, "fault": shadow.fault}
+
+    def load_shadow_state(self, shadow: Shadow, state: Mapping[str, Any]) -> None:
+        shadow.model.load_state_dict(state["model"])
+        shadow.optimizer.load_state_dict(copy.deepcopy(state["optimizer"]))
+        shadow.forked = bool(state["forked"])
+        shadow.forked_at = state["forked_at"]
+        shadow.fault = state["fault"]
 
     def remove_shadow(self, shadow: Shadow) -> None:
         self.shadows.remove(shadow)
@@ -314,6 +330,8 @@ class PerShadowEngine:
                         break
                     loss.backward()
             if finite:
+                if self.gradient_sync is not None:
+                    self.gradient_sync(shadow.model)
                 if self.before_step is not None:
                     self.before_step(shadow.model)
                 self._sync_hyperparameters(shadow)

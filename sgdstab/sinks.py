@@ -51,6 +51,31 @@ def scalar_tags(reading: EpochReading) -> Iterator[tuple[str, float]]:
         yield "bound/high_probability_gap", reading.high_probability_gap
 
 
+def dashboard_layout(shadows: int) -> dict[str, dict[str, list[Any]]]:
+    """Charts pairing each shadow's divergence with its pathwise bound, and so on."""
+    per_shadow = {
+        f"shadow {k}: divergence vs pathwise bound":
+            ["Multiline", [f"divergence/shadow_{k}$", f"bound/path_shadow_{k}$"]]
+        for k in range(shadows)
+    }
+    return {
+        "sgdstab divergence": per_shadow,
+        "sgdstab stability": {
+            "loss difference vs expected stability bound":
+                ["Multiline", ["loss_difference/max$", "loss_difference/mean$",
+                               "bound/expected_stability$", "bound/uniform_stability$"]],
+        },
+        "sgdstab generalization": {
+            "replace-one gap estimate (+/- stderr) vs measured holdout-train gap":
+                ["Margin", ["gap/replace_one_estimate$", "gap/replace_one_lower$",
+                            "gap/replace_one_upper$"]],
+            "gap estimate and measured gap":
+                ["Multiline", ["gap/replace_one_estimate$", "gap/holdout_minus_train$",
+                               "bound/high_probability_gap$"]],
+        },
+    }
+
+
 class JsonlSink:
     """Appends one JSON object per line, flushed and fsynced so a crash loses no finished epoch."""
 
@@ -80,6 +105,15 @@ class TensorBoardSink:
             self.writer.add_scalar(tag, value, global_step=reading.epoch)
         self.writer.flush()
 
+    def write_layout(self, shadows: int) -> None:
+        """A custom-scalars layout: each measured quantity shares a chart with its bound."""
+        self.writer.add_custom_scalars(dashboard_layout(shadows))
+        self.writer.flush()
+
+    def write_text(self, tag: str, text: str, step: int) -> None:
+        self.writer.add_text(tag, text, global_step=step)
+        self.writer.flush()
+
     def close(self) -> None:
         if not self.closed:
             self.writer.close()
@@ -102,6 +136,13 @@ class RunSinks:
     def write(self, reading: EpochReading) -> None:
         self.history.write(reading.to_dict())
         self.tensorboard.write(reading)
+
+    def write_advice(self, advice: Any) -> None:
+        """advice.json in the run directory and the advice's summary as TensorBoard text."""
+        with open(self.log_dir / "advice.json", "w", encoding="utf-8") as handle:
+            json.dump(advice.to_dict(), handle, indent=2, sort_keys=True)
+        self.tensorboard.write_text("advice/stop_suggestion", advice.summary(),
+                                    step=int(advice.to_dict().get("epochs_seen", 0) or 0))
 
     def close(self) -> None:
         self.tensorboard.close()

@@ -15,12 +15,12 @@ from torch.utils.data import DataLoader, Dataset
 from torch.utils.data._utils.collate import default_collate
 
 from .constants import Constants
+from .engines import make_engine
 from .history import StepHistory
 from .loaders import check_train_set, recording_loader
 from .lockstep import (
     LockstepError,
     NeighbourSpec,
-    PerShadowEngine,
     Shadow,
     StepGroup,
     preserved_rng,
@@ -92,6 +92,7 @@ class StabilityTracker:
         before_step: Callable[[nn.Module], Any] | None = None,
         lazy_fork: bool = True,
         probe_size: int = 256,
+        engine: str = "auto",
     ) -> None:
         if not isinstance(model, nn.Module):
             raise TypeError("model must be a torch.nn.Module")
@@ -131,7 +132,8 @@ class StabilityTracker:
         self.optimizer_reason = _optimizer_reason(optimizer)
         self._rng = np.random.default_rng(self.seed)
         self.specs = self._neighbour_specs(shadows, swap)
-        self.engine = PerShadowEngine(model, optimizer, self._loss_of, before_step)
+        self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
+                                  shadows=len(self.specs) + int(bool(audit)))
         self.shadows: list[Shadow] = [self.engine.add_shadow(spec, None, f"shadow_{k}")
                                       for k, spec in enumerate(self.specs)]
         self.audit_shadow: Shadow | None = None
@@ -141,6 +143,7 @@ class StabilityTracker:
         self.history = StepHistory(shadows=len(self.shadows))
         self.epoch = 0
         self.steps = 0
+        self.readings: list[EpochReading] = []
         self._group = StepGroup([], [], [])
         self._collate: Callable[[list[Any]], Any] = default_collate
         self._collate_rows_for: Any = None
@@ -149,7 +152,7 @@ class StabilityTracker:
         self._warned: set[str] = set()
         self._assumption_violated = False
         self._checked_batch = False
-        self.sinks = RunSinks(log_dir) if log_dir is not None else None
+        self.sinks = RunSinks(log_dir) if log_dir is not None and self._writes_files() else None
         if not self.lazy_fork:
             for shadow in self.shadows:
                 self.engine.fork(shadow, 0, None)
@@ -157,6 +160,7 @@ class StabilityTracker:
                        optimizer.register_step_post_hook(self._after_main_step)]
         if self.sinks is not None:
             self.sinks.write_run(self.describe())
+            self.sinks.tensorboard.write_layout(len(self.shadows))
 
     # -- set-up ---------------------------------------------------------------------------------
     def _fetch(self, dataset: Any, index: int) -> Any:
@@ -268,7 +272,7 @@ class StabilityTracker:
         group = self._group
         if not group.batches:
             return
-        drawn = group.all_indices()
+        drawn = self._drawn_indices(group)
         for shadow in self.engine.shadows:
             if not shadow.forked and shadow.spec.index in drawn:
                 self.engine.fork(shadow, self.steps, group.buffers)
@@ -291,7 +295,7 @@ class StabilityTracker:
             warnings.warn(f"{shadow.label} (swapping index {shadow.spec.index}) hit a non-finite "
                           f"loss or parameter at step {self.steps}; it is frozen and marked, the "
                           "other shadows and the main run go on", ShadowFaultWarning, stacklevel=3)
-        drawn = group.all_indices()
+        drawn = self._drawn_indices(group)
         rates = {float(g["lr"]) for g in optimizer.param_groups}
         if len(rates) > 1:
             self._warn_once("lrs", "parameter groups use different step sizes; the bounds use the "
@@ -299,6 +303,14 @@ class StabilityTracker:
         hit_counts = [int(np.count_nonzero(drawn == s.spec.index)) for s in self.shadows]
         self.history.record(max(rates), len(drawn), drawn, hit_counts)
         self.steps += 1
+
+    def _drawn_indices(self, group: StepGroup) -> np.ndarray:
+        """Every training index the step used (a data-parallel tracker gathers all ranks')."""
+        return group.all_indices()
+
+    def _writes_files(self) -> bool:
+        """Whether this process writes the run directory (only rank 0 in data-parallel runs)."""
+        return True
 
     def _warn_once(self, key: str, message: str, category: type[Warning]) -> None:
         if key not in self._warned:
@@ -402,9 +414,19 @@ class StabilityTracker:
             gap_estimate=summary.gap_estimate, gap_stderr=summary.gap_stderr,
             train_loss=summary.train_loss, holdout_loss=summary.holdout_loss,
             shadow_faults=faults, notes=tuple(notes), **bound_fields)
+        self.readings.append(reading)
         if self.sinks is not None:
             self.sinks.write(reading)
         return reading
+
+    def advise(self, target: float | None = None) -> Any:
+        """Stop suggestions from the readings so far (``sgdstab.advice.StopAdvice``)."""
+        from .advice import advise
+
+        advice = advise(self.readings, target=target)
+        if self.sinks is not None:
+            self.sinks.write_advice(advice)
+        return advice
 
     def _finish_audit(self, audit: float | None, notes: list[str]) -> float | None:
         shadow = self.audit_shadow
