@@ -312,7 +312,10 @@ class PerShadowEngine:
         Returns the shadows that hit a non-finite loss or parameter at this step (now frozen).
         """
         faulted = []
+        modes = [module.training for module in self.main_model.modules()]
         for shadow in shadows:
+            for module, mode in zip(shadow.model.modules(), modes):
+                module.training = mode   # follow the user's train()/eval() choices per module
             for p in shadow.model.parameters():
                 p.grad = None
             finite = True

@@ -93,6 +93,7 @@ class StabilityTracker:
         lazy_fork: bool = True,
         probe_size: int = 256,
         engine: str = "auto",
+        loss_bound: float | None = None,
     ) -> None:
         if not isinstance(model, nn.Module):
             raise TypeError("model must be a torch.nn.Module")
@@ -128,6 +129,11 @@ class StabilityTracker:
         self.lazy_fork = bool(lazy_fork)
         self.declared_constants = constants if isinstance(constants, Constants) else None
         self.estimate_constants = constants == "estimate"
+        if loss_bound is not None and not (math.isfinite(float(loss_bound)) and loss_bound > 0):
+            raise ValueError(f"loss_bound must be a positive finite number, got {loss_bound}")
+        if loss_bound is not None and self.declared_constants is not None:
+            raise ValueError("give loss_bound inside Constants(...) when constants are declared")
+        self.loss_bound = None if loss_bound is None else float(loss_bound)
         self._estimated: Constants | None = None
         self.optimizer_reason = _optimizer_reason(optimizer)
         self._rng = np.random.default_rng(self.seed)
@@ -457,7 +463,7 @@ class StabilityTracker:
                               self.n, size=min(self.probe_size, self.n), replace=False)]
             batch = self._collate(train_rows)
             fresh = _Constants.estimate(self.model, batch, loss_fn=self.loss_fn,
-                                        step_loss=self.step_loss)
+                                        step_loss=self.step_loss, loss_bound=self.loss_bound)
             self._estimated = fresh if self._estimated is None else \
                 self._estimated.merged_max(fresh)
             return self._estimated
