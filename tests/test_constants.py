@@ -450,3 +450,23 @@ def test_estimate_builds_estimated_constants() -> None:
     strong = Constants.estimate(model, batch, loss_fn=F.cross_entropy, convex=True,
                                 strong_convexity=big)
     assert strong.smoothness == pytest.approx(big) and strong.regime == "strongly_convex"
+
+
+def test_namedtuple_and_list_batches_match_tuple_batch() -> None:
+    from collections import namedtuple
+
+    Pair = namedtuple("Pair", ["inputs", "targets"])
+    model = classifier()
+    inputs, targets = toy_batch(7)
+
+    def step_loss(m: nn.Module, b) -> torch.Tensor:
+        return F.cross_entropy(m(b[0]), b[1])
+
+    as_tuple = per_example_gradient_norms(model, (inputs, targets), step_loss=step_loss)
+    as_named = per_example_gradient_norms(
+        model, Pair(inputs, targets),
+        step_loss=lambda m, b: F.cross_entropy(m(b.inputs), b.targets),
+    )
+    as_list = per_example_gradient_norms(model, [inputs, targets], step_loss=step_loss)
+    torch.testing.assert_close(as_named, as_tuple, rtol=1e-12, atol=1e-12)
+    torch.testing.assert_close(as_list, as_tuple, rtol=1e-12, atol=1e-12)
