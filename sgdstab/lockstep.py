@@ -88,8 +88,8 @@ def batch_length(batch: Any) -> int | None:
 
 
 def _is_leaf_list(value: Any) -> bool:
-    """A list of plain values (e.g. strings collated into a list), one per row."""
-    return isinstance(value, list) and all(
+    """A list or tuple of plain values (e.g. collated strings), one per row."""
+    return isinstance(value, (list, tuple)) and all(
         not isinstance(item, (torch.Tensor, Mapping, list, tuple)) for item in value
     )
 
@@ -127,11 +127,12 @@ def substitute_rows(batch: Any, row: Any, positions: Sequence[int], rows: int, p
         except TypeError:
             return changed
     if isinstance(batch, (list, tuple)):
-        if _is_leaf_list(batch) and len(batch) == rows and isinstance(row, list) and len(row) == 1:
+        if _is_leaf_list(batch) and len(batch) == rows and isinstance(row, (list, tuple)) \
+                and len(row) == 1 and _is_leaf_list(row):
             out_list = list(batch)
             for position in positions:
                 out_list[position] = row[0]
-            return out_list
+            return type(batch)(out_list) if isinstance(batch, tuple) else out_list
         if not isinstance(row, (list, tuple)) or len(row) != len(batch):
             raise LockstepError(f"{path}: replacement structure (length "
                                 f"{len(row) if isinstance(row, (list, tuple)) else 'n/a'}) does "
@@ -160,7 +161,8 @@ def select_rows(batch: Any, rows: slice | Sequence[int], length: int) -> Any:
         return {key: select_rows(value, rows, length) for key, value in batch.items()}
     if isinstance(batch, (list, tuple)):
         if _is_leaf_list(batch) and len(batch) == length:
-            return batch[rows] if isinstance(rows, slice) else [batch[i] for i in rows]
+            picked = batch[rows] if isinstance(rows, slice) else [batch[i] for i in rows]
+            return type(batch)(picked) if isinstance(batch, tuple) else list(picked)
         items = [select_rows(value, rows, length) for value in batch]
         if isinstance(batch, tuple):
             return type(batch)(*items) if hasattr(batch, "_fields") else tuple(items)
