@@ -222,9 +222,11 @@ class PerShadowEngine:
         self.main_optimizer = main_optimizer
         self.loss_of = loss_of
         self.before_step = before_step
-        # Called on each shadow after its backward passes and before before_step / its optimizer
-        # step; a data-parallel tracker sets it to all-reduce the shadow's gradients.
-        self.gradient_sync: Callable[[nn.Module], Any] | None = None
+        # Called as gradient_sync(shadow_model, finite) on each stepped shadow after its backward
+        # passes and before before_step / its optimizer step; a data-parallel tracker sets it to
+        # all-reduce the shadow's gradients. It is called even when this process's loss was not
+        # finite (so every rank joins the same collectives) and returns whether all ranks' were.
+        self.gradient_sync: Callable[[nn.Module, bool], bool] | None = None
         params = list(main_model.parameters())
         position = {id(p): k for k, p in enumerate(params)}
         self.group_positions: list[list[int]] = []
@@ -334,9 +336,9 @@ class PerShadowEngine:
                         finite = False
                         break
                     loss.backward()
+            if self.gradient_sync is not None:
+                finite = bool(self.gradient_sync(shadow.model, finite))
             if finite:
-                if self.gradient_sync is not None:
-                    self.gradient_sync(shadow.model)
                 if self.before_step is not None:
                     self.before_step(shadow.model)
                 self._sync_hyperparameters(shadow)

@@ -152,14 +152,18 @@ def summarise_probe(main: np.ndarray, shadows: Sequence[np.ndarray], probe: Prob
                             + (main[in_rows] - losses[in_rows]).mean())
             samples.append(sample)
         samples_array = np.asarray(samples)
-        if np.all(np.isfinite(samples_array)):
+        if not np.all(np.isfinite(samples_array)):
+            notes.append("gap estimate leaves out shadows whose losses are not finite")
+            samples_array = samples_array[np.isfinite(samples_array)]
+            samples = list(samples_array)
+        if samples_array.size:
             gap = float(samples_array.mean())
             if len(samples) >= 2:
                 stderr = float(samples_array.std(ddof=1) / math.sqrt(len(samples)))
             else:
                 notes.append("gap standard error needs at least 2 shadows")
         else:
-            notes.append("gap estimate: a shadow's loss is not finite")
+            notes.append("gap estimate: no shadow has finite losses")
     train_rows = np.isin(probe.kinds, ["out", "train"])
     holdout_rows = np.isin(probe.kinds, ["in", "holdout"])
     train_loss = _mean(main[train_rows])

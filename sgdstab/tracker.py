@@ -25,6 +25,7 @@ from .lockstep import (
     StepGroup,
     preserved_rng,
     select_rows,
+    substitute_rows,
     trainable_parameters,
 )
 from .probe import PerExampleLoss, ProbeRows, model_losses, summarise_probe
@@ -226,6 +227,14 @@ class StabilityTracker:
         with preserved_rng():
             for shadow in self.shadows:
                 shadow.row = collate([shadow.spec.replacement])
+                own = collate([self.train_set[shadow.spec.index]])
+                try:   # the replacement must have the training examples' structure
+                    substitute_rows(own, shadow.row, [0], 1)
+                except LockstepError as error:
+                    raise LockstepError(
+                        f"{shadow.label}: the replacement for training example "
+                        f"{shadow.spec.index} does not match the training examples' structure: "
+                        f"{error}") from None
         self._collate_rows_for = collate
         self._probe = None
 
@@ -395,12 +404,20 @@ class StabilityTracker:
                          "optimizer.step() belong to no step")
         self.epoch += 1
         divergence, layer, audit = self._divergences()
+        divergence = [math.nan if s.fault is not None else d
+                      for s, d in zip(self.shadows, divergence)]
         if self._probe is None:
             self._probe = self._build_probe()
         main_losses = model_losses(self.model, self._probe, self._per_example)
-        shadow_losses = [model_losses(self.engine.module_of(s), self._probe, self._per_example)
-                         if s.forked
-                         else main_losses for s in self.shadows]
+        shadow_losses = []
+        for shadow in self.shadows:
+            if shadow.fault is not None:
+                shadow_losses.append(np.full_like(main_losses, np.nan))
+            elif shadow.forked:
+                shadow_losses.append(model_losses(self.engine.module_of(shadow), self._probe,
+                                                  self._per_example))
+            else:
+                shadow_losses.append(main_losses)
         fresh, reason = self._fresh()
         kinds = ("out", "in", "probe") if self.probe_set is not None else \
             ("out", "in", "train", "holdout")
@@ -523,6 +540,19 @@ class StabilityTracker:
                 f"{constants.regime} assumption are wrong for this run; its bounds do not hold.",
                 AssumptionWarning, stacklevel=4)
         return True
+
+    # -- checkpoints ----------------------------------------------------------------------------
+    def state_dict(self) -> dict[str, Any]:
+        """Everything needed to resume (take it after finish_epoch; save it with torch.save)."""
+        from .checkpoint import tracker_state
+
+        return tracker_state(self)
+
+    def load_state_dict(self, state: dict[str, Any]) -> None:
+        """Resume from ``state_dict()`` output; a state that does not fit is a clear error."""
+        from .checkpoint import restore_tracker
+
+        restore_tracker(self, state)
 
     # -- misc -----------------------------------------------------------------------------------
     def describe(self) -> dict[str, Any]:
