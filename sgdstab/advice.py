@@ -46,6 +46,7 @@ __all__ = [
     "TrainingPlan",
     "advise",
     "acceleration_epoch",
+    "as_readings",
 ]
 
 #: Shown with every suggestion (and in the report).
@@ -251,6 +252,11 @@ def _ordered(readings: Sequence[EpochReading | Mapping[str, Any]]) -> list[Epoch
         reading = _as_reading(item)
         by_epoch[int(reading.epoch)] = reading
     return [by_epoch[e] for e in sorted(by_epoch)]
+
+
+def as_readings(records: Sequence[EpochReading | Mapping[str, Any]]) -> list[EpochReading]:
+    """Readings or history.jsonl dicts as EpochReadings, by epoch (a repeated epoch: the last)."""
+    return _ordered(records)
 
 
 def _bound_status(reading: EpochReading, value: float | None, name: str) -> tuple[bool, str]:

@@ -1,0 +1,37 @@
+"""``sgdstab report RUN_DIR``: charts and report.html for a run directory."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+__all__ = ["configure", "run"]
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    """Add the report command's arguments to ``parser``."""
+    parser.add_argument("run_dir", help="a run directory (holding history.jsonl)")
+    parser.add_argument("--out", default=None,
+                        help="where to write the charts and report.html (default: RUN_DIR/report)")
+    parser.add_argument("--target", type=float, default=None,
+                        help="recompute the stop advice with this budget on the expected "
+                             "stability bound")
+
+
+def run(args: argparse.Namespace) -> int:
+    """Write the report; 0 on success, 2 for a missing or empty run, 3 without matplotlib."""
+    from .report import write_report
+
+    try:
+        page = write_report(args.run_dir, out_dir=args.out, target=args.target)
+    except FileNotFoundError as error:
+        print(f"sgdstab report: {error}", file=sys.stderr)
+        return 2
+    except ValueError as error:
+        print(f"sgdstab report: {error}", file=sys.stderr)
+        return 2
+    except ImportError as error:
+        print(f"sgdstab report: {error}", file=sys.stderr)
+        return 3
+    print(page)
+    return 0

@@ -1,0 +1,428 @@
+"""Plots and a self-contained report.html from a run directory.
+
+Reads history.jsonl (and run.json, advice.json when present; the advice is computed when absent
+or stale), draws four PNG charts with matplotlib's Agg canvas (no global backend is changed) and
+writes report.html with the charts embedded as base64 data URIs: no external asset is linked.
+matplotlib is an optional extra (``pip install 'sgdstab[report]'``), imported only here.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import json
+import math
+import warnings
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from .advice import CAUTIONS, StopAdvice, advise, as_readings
+from .reading import EpochReading, read_history
+
+__all__ = ["Chart", "write_report", "REPORT_DIR"]
+
+#: Where the report goes inside a run directory unless told otherwise.
+REPORT_DIR = "report"
+
+
+@dataclass(frozen=True)
+class Chart:
+    """One drawn chart: its file, caption and PNG bytes."""
+
+    name: str
+    caption: str
+    png: bytes
+
+
+def _matplotlib() -> tuple[Any, Any]:
+    try:
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
+    except ImportError as error:
+        raise ImportError("the report needs matplotlib, an optional extra: "
+                          "pip install 'sgdstab[report]'") from error
+    return Figure, FigureCanvasAgg
+
+
+# ---------------------------------------------------------------------------------------------
+# Charts
+# ---------------------------------------------------------------------------------------------
+
+
+def _number(value: Any) -> float:
+    """A plottable float: missing or non-finite values become NaN (a gap in the line)."""
+    if value is None or isinstance(value, bool):
+        return math.nan
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        return math.nan
+    return number if math.isfinite(number) else math.nan
+
+
+def _has(values: Sequence[float]) -> bool:
+    return any(math.isfinite(v) for v in values)
+
+
+class _Canvas:
+    """A figure with one axes, a log scale when the values span many decades, and a stop mark."""
+
+    def __init__(self, title: str, ylabel: str) -> None:
+        figure_class, canvas_class = _matplotlib()
+        self.figure = figure_class(figsize=(7.0, 3.6), dpi=100)
+        canvas_class(self.figure)
+        self.axes = self.figure.add_subplot(1, 1, 1)
+        self.axes.set_title(title, fontsize=11)
+        self.axes.set_xlabel("epoch")
+        self.axes.set_ylabel(ylabel)
+        self.axes.grid(True, alpha=0.3)
+        self.values: list[float] = []
+
+    def line(self, epochs: Sequence[int], values: Sequence[float], **style: Any) -> None:
+        if _has(values):
+            self.axes.plot(epochs, values, **style)
+            self.values += [v for v in values if math.isfinite(v)]
+
+    def band(self, epochs: Sequence[int], low: Sequence[float], high: Sequence[float],
+             **style: Any) -> None:
+        if _has(low) and _has(high):
+            self.axes.fill_between(epochs, low, high, **style)
+
+    def png(self, stop: int | None, empty: str) -> bytes:
+        axes = self.axes
+        if stop is not None:
+            axes.axvline(stop, color="0.3", linestyle=":", linewidth=1.5,
+                         label=f"suggested stop (epoch {stop})")
+        if not self.values:
+            axes.text(0.5, 0.5, empty, transform=axes.transAxes, ha="center", va="center",
+                      color="0.4")
+        else:
+            positive = [v for v in self.values if v > 0]
+            if len(positive) == len(self.values) and max(positive) / min(positive) > 1e3:
+                axes.set_yscale("log")
+        if axes.get_legend_handles_labels()[0]:
+            axes.legend(fontsize=8, loc="best")
+        self.figure.tight_layout()
+        buffer = io.BytesIO()
+        self.figure.savefig(buffer, format="png")
+        return buffer.getvalue()
+
+
+def _charts(readings: Sequence[EpochReading], stop: int | None) -> list[Chart]:
+    epochs = [r.epoch for r in readings]
+    shadows = max((len(r.divergence) for r in readings), default=0)
+    colours = [f"C{k % 10}" for k in range(shadows)]
+
+    canvas = _Canvas("Each shadow's divergence and its pathwise bound", "||w - w'||")
+    for k in range(shadows):
+        measured = [_number(r.divergence[k]) if k < len(r.divergence) else math.nan
+                    for r in readings]
+        bound = [_number(r.path_bound[k]) if k < len(r.path_bound) else math.nan
+                 for r in readings]
+        canvas.line(epochs, measured, color=colours[k], marker="o", markersize=3,
+                    label=f"shadow {k}")
+        canvas.line(epochs, bound, color=colours[k], linestyle="--",
+                    label="pathwise bound (dashed, per shadow)" if k == 0 else None)
+    divergence = Chart("divergence.png", "Measured parameter divergence of each shadow (solid) "
+                       "with its pathwise bound (dashed, same colour) where one applies.",
+                       canvas.png(stop, "no divergence recorded"))
+
+    canvas = _Canvas("Loss difference and the expected stability bound", "loss difference")
+    canvas.line(epochs, [_number(r.loss_difference_max) for r in readings], color="C0",
+                marker="o", markersize=3, label="max |f(w;z) - f(w';z)|")
+    canvas.line(epochs, [_number(r.loss_difference_mean) for r in readings], color="C1",
+                marker="o", markersize=3, label="mean |f(w;z) - f(w';z)|")
+    canvas.line(epochs, [_number(r.expected_bound) for r in readings], color="C3",
+                linestyle="--", label="expected stability bound")
+    canvas.line(epochs, [_number(r.uniform_stability) for r in readings], color="C4",
+                linestyle="-.", label="seeded uniform stability bound")
+    stability = Chart("stability.png", "Measured loss differences between the main model and "
+                      "the shadows, with the expected stability bound.",
+                      canvas.png(stop, "no loss difference recorded"))
+
+    canvas = _Canvas("Generalization gap: replace-one estimate and measured", "gap")
+    estimate = [_number(r.gap_estimate) for r in readings]
+    stderr = [_number(r.gap_stderr) for r in readings]
+    canvas.band(epochs, [g - s for g, s in zip(estimate, stderr)],
+                [g + s for g, s in zip(estimate, stderr)], color="C0", alpha=0.2,
+                label="estimate +/- 1 standard error")
+    canvas.line(epochs, estimate, color="C0", marker="o", markersize=3,
+                label="replace-one gap estimate")
+    canvas.line(epochs, [_number(r.holdout_loss) - _number(r.train_loss) for r in readings],
+                color="C2", marker="s", markersize=3, label="holdout loss - train loss")
+    gap = Chart("gap.png", "The on-average replace-one estimate of the expected gap (band: one "
+                "standard error across shadows) against the measured holdout-minus-train gap.",
+                canvas.png(stop, "no gap estimate or holdout loss recorded"))
+
+    canvas = _Canvas("Training and holdout loss", "loss")
+    train = [_number(r.train_loss) for r in readings]
+    canvas.line(epochs, train, color="C0", marker="o", markersize=3, label="train (probe)")
+    canvas.line(epochs, [_number(r.holdout_loss) for r in readings], color="C2", marker="s",
+                markersize=3, label="holdout (probe)")
+    canvas.line(epochs, [t + _number(r.expected_bound) for t, r in zip(train, readings)],
+                color="C3", linestyle="--", label="train + expected bound")
+    canvas.line(epochs, [t + g for t, g in zip(train, estimate)], color="C1", linestyle=":",
+                label="train + gap estimate")
+    losses = Chart("losses.png", "Training and holdout losses of the main model on the probe "
+                   "examples, with the two sums the stop criteria minimise.",
+                   canvas.png(stop, "no loss recorded"))
+    return [divergence, stability, gap, losses]
+
+
+# ---------------------------------------------------------------------------------------------
+# HTML
+# ---------------------------------------------------------------------------------------------
+
+_STYLE = """
+body { font-family: system-ui, sans-serif; max-width: 60rem; margin: 2rem auto; padding: 0 1rem;
+       color: #222; line-height: 1.45; }
+h1 { font-size: 1.5rem; } h2 { font-size: 1.15rem; margin-top: 2rem;
+     border-bottom: 1px solid #ccc; }
+table { border-collapse: collapse; font-size: 0.85rem; margin: 0.5rem 0; }
+th, td { border: 1px solid #ddd; padding: 0.2rem 0.5rem; text-align: left; vertical-align: top; }
+th { background: #f3f3f3; }
+.stop { background: #eef6ee; border-left: 4px solid #3a7d3a; padding: 0.6rem 1rem; }
+.stop.none { background: #f8f1e4; border-left-color: #b07b22; }
+.warn { background: #fbecec; border-left: 4px solid #b33; padding: 0.4rem 1rem; }
+.no { color: #a33; } .yes { color: #2a6d2a; }
+figure { margin: 1rem 0; } figcaption { font-size: 0.85rem; color: #555; }
+img { max-width: 100%; }
+"""
+
+
+def _e(value: Any) -> str:
+    return html.escape(str(value), quote=True)
+
+
+def _fmt(value: Any) -> str:
+    if value is None:
+        return "&ndash;"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, float):
+        return _e(f"{value:.4g}") if math.isfinite(value) else "&ndash;"
+    return _e(value)
+
+
+def _table(header: Sequence[str], rows: Sequence[Sequence[Any]]) -> str:
+    head = "".join(f"<th>{_e(h)}</th>" for h in header)
+    body = "".join("<tr>" + "".join(f"<td>{_fmt(c)}</td>" for c in row) + "</tr>" for row in rows)
+    return f"<table><tr>{head}</tr>{body}</table>"
+
+
+def _stop_section(advice: StopAdvice) -> str:
+    if advice.suggested_epoch is None:
+        head = f"No stop suggestion after {advice.epochs_seen} epoch(s)."
+        box = "stop none"
+    else:
+        head = (f"Suggested stop: epoch {advice.suggested_epoch} of {advice.epochs_seen} "
+                f"(criterion: {advice.criterion})")
+        box = "stop"
+    kind = ("certified (declared constants)" if advice.certified else
+            "indicative (estimated constants)" if advice.bound_applies else
+            f"not applicable: {advice.bound_reason}")
+    parts = [f'<div class="{box}"><p><strong>{_e(head)}</strong></p><p>{_e(advice.reason)}</p>'
+             f"<p>Bounds: {_e(kind)}</p></div>",
+             "<h2>Stop criteria</h2>",
+             _table(["criterion", "epoch", "value", "reason"],
+                    [(c.name, c.epoch, c.value, c.reason) for c in advice.criteria])]
+    if advice.budget is not None:
+        b = advice.budget
+        parts.append(_table(
+            ["budget on", "target", "last epoch within", "more epochs allowed", "method",
+             "projection"],
+            [(b.bound_name, b.target, b.last_epoch_within,
+              "unlimited at this rate" if b.unlimited else b.extra_epochs, b.method, b.reason)]))
+    return "\n".join(parts)
+
+
+def _constants_section(readings: Sequence[EpochReading], run: Mapping[str, Any]) -> str:
+    constants = next((r.constants for r in reversed(readings) if r.constants), None)
+    if not constants:
+        declared = run.get("constants")
+        if declared == "estimate":
+            return ("<p>Constants were to be estimated, but no epoch recorded an estimate.</p>")
+        return ("<p>No constants were given (neither declared nor estimated), so no bound was "
+                "computed; only the measured quantities are reported.</p>")
+    source = constants.get("source", "unknown")
+    if source == "declared":
+        where = ("<p class='yes'>Source: <strong>declared</strong> by the user. The bounds are "
+                 "certified only if these values truly hold for the loss.</p>")
+    else:
+        where = ("<p class='no'>Source: <strong>estimated</strong> from the model (largest "
+                 "per-example gradient norm; top Hessian eigenvalue by power iteration), as a "
+                 "running maximum over the epochs. These are LOWER, local estimates: the bounds "
+                 "built on them are indicative, not certified.</p>")
+    rows = [(name, constants.get(name)) for name in
+            ("lipschitz", "smoothness", "strong_convexity", "loss_bound", "convex")]
+    if source != "declared":
+        first = next((r.constants for r in readings if r.constants), {})
+        rows = [(name, first.get(name), value) for name, value in rows]
+        table = _table(["constant", "first estimate", "last (running maximum)"], rows)
+    else:
+        table = _table(["constant", "value"], rows)
+    return where + table
+
+
+def _bounds_section(readings: Sequence[EpochReading]) -> str:
+    last = next((r for r in reversed(readings) if r.bounds), None)
+    if last is None:
+        return "<p>No bound was computed for this run.</p>"
+    bounds = last.bounds
+    rows = []
+    if "path_applicable" in bounds:
+        rows.append(("pathwise divergence (per shadow)", bool(bounds["path_applicable"]),
+                     bounds.get("path_reason", ""), "", ""))
+    for name, entry in bounds.items():
+        if isinstance(entry, Mapping) and "applicable" in entry:
+            assumptions = "; ".join(str(a) for a in entry.get("assumptions", ()) or ())
+            rows.append((name.replace("_", " "), bool(entry["applicable"]),
+                         entry.get("reason") or "", entry.get("source", ""), assumptions))
+    text = [f"<p>As of epoch {last.epoch}; regime: {_e(bounds.get('regime', 'unknown'))}.</p>"]
+    text.append(_table(["bound", "applies", "reason if not", "source", "assumptions"], rows))
+    violated = [r.epoch for r in readings if r.assumption_violated]
+    if violated:
+        text.append(f"<p class='warn'>At epoch(s) {_e(violated)} a measured divergence exceeded "
+                    "its pathwise bound: the declared constants or the convexity assumption are "
+                    "wrong for this run, and its bounds do not hold.</p>")
+    return "\n".join(text)
+
+
+def _run_section(run: Mapping[str, Any]) -> str:
+    if not run:
+        return "<p>run.json not found.</p>"
+    rows = [(key, run.get(key)) for key in ("n", "optimizer", "optimizer_reason", "seed", "delta",
+                                            "engine", "audit") if key in run]
+    shadows = run.get("shadows") or []
+    shadow_rows = [(k, s.get("index"), s.get("origin"), s.get("source_index"))
+                   for k, s in enumerate(shadows) if isinstance(s, Mapping)]
+    return (_table(["setting", "value"], rows)
+            + _table(["shadow", "swapped-out training index", "replacement from",
+                      "replacement index"], shadow_rows))
+
+
+def _epoch_table(advice: StopAdvice) -> str:
+    return _table(
+        ["epoch", "steps", "train", "holdout", "expected bound", "train + bound", "gap estimate",
+         "stderr", "train + gap", "mean divergence", "divergence per step", "within target"],
+        [(r.epoch, r.steps, r.train_loss, r.holdout_loss, r.expected_bound, r.bound_risk,
+          r.gap_estimate, r.gap_stderr, r.measured_risk, r.mean_divergence, r.divergence_rate,
+          r.within_target) for r in advice.rows])
+
+
+def _notes_section(readings: Sequence[EpochReading]) -> str:
+    first_seen: dict[str, int] = {}
+    for r in readings:
+        for note in r.notes:
+            first_seen.setdefault(note, r.epoch)
+    if not first_seen:
+        return "<p>None.</p>"
+    return _table(["first epoch", "note"], [(e, n) for n, e in first_seen.items()])
+
+
+def _page(title: str, advice: StopAdvice, charts: Sequence[Chart],
+          readings: Sequence[EpochReading], run: Mapping[str, Any], problems: Sequence[str]) -> str:
+    figures = "\n".join(
+        f'<figure><img alt="{_e(c.caption)}" src="data:image/png;base64,'
+        f'{base64.b64encode(c.png).decode("ascii")}"><figcaption>{_e(c.caption)}</figcaption>'
+        "</figure>" for c in charts)
+    warnings_html = "".join(f'<p class="warn">{_e(p)}</p>' for p in problems)
+    cautions = "".join(f"<li>{_e(c)}</li>" for c in (advice.cautions or CAUTIONS))
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>{_e(title)}</title><style>{_STYLE}</style></head>
+<body>
+<h1>{_e(title)}</h1>
+{warnings_html}
+{_stop_section(advice)}
+<h2>Charts</h2>
+{figures}
+<h2>Constants and where they came from</h2>
+{_constants_section(readings, run)}
+<h2>Bounds and their applicability</h2>
+{_bounds_section(readings)}
+<h2>Cautions</h2>
+<ul>{cautions}</ul>
+<h2>Per-epoch table</h2>
+{_epoch_table(advice)}
+<h2>Run</h2>
+{_run_section(run)}
+<h2>Notes recorded during the run</h2>
+{_notes_section(readings)}
+</body></html>
+"""
+
+
+# ---------------------------------------------------------------------------------------------
+# Entry point
+# ---------------------------------------------------------------------------------------------
+
+
+def _load_json(path: Path, problems: list[str]) -> dict[str, Any]:
+    if not path.exists():
+        return {}
+    try:
+        with open(path, encoding="utf-8") as handle:
+            data = json.load(handle)
+    except (OSError, json.JSONDecodeError) as error:
+        problems.append(f"{path.name} could not be read ({error}); ignored")
+        return {}
+    return data if isinstance(data, dict) else {}
+
+
+def _advice(run_dir: Path, readings: Sequence[EpochReading], target: float | None,
+            problems: list[str]) -> StopAdvice:
+    saved = None if target is not None else _load_json(run_dir / "advice.json", problems)
+    if saved:
+        try:
+            advice = StopAdvice.from_dict(saved)
+        except (TypeError, ValueError) as error:
+            problems.append(f"advice.json is malformed ({error}); the advice was recomputed")
+        else:
+            if advice.epochs_seen == len(readings):
+                return advice
+            problems.append(f"advice.json covers {advice.epochs_seen} epoch(s) but the history "
+                            f"has {len(readings)}; the advice was recomputed")
+            if advice.budget is not None:
+                target = advice.budget.target
+    return advise(readings, target=target)
+
+
+def write_report(run_dir: str | Path, *, out_dir: str | Path | None = None,
+                 target: float | None = None) -> Path:
+    """Write the PNG charts and report.html for ``run_dir``; return the path of report.html.
+
+    Output goes to ``out_dir`` (default ``run_dir/report``). With ``target`` the advice is
+    recomputed with that budget; otherwise advice.json is used when it covers every epoch.
+    A damaged history line is skipped with a warning, also shown at the top of the page.
+    """
+    run_dir = Path(run_dir)
+    history = run_dir / "history.jsonl"
+    if not history.is_file():
+        raise FileNotFoundError(f"{history} not found: is {run_dir} a run directory?")
+    _matplotlib()  # fail early, before anything is written
+    problems: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        records = read_history(history)
+    for warning in caught:
+        problems.append(str(warning.message))
+        warnings.warn(str(warning.message), warning.category, stacklevel=2)
+    readings = as_readings(records)
+    if not readings:
+        raise ValueError(f"{history} holds no finished epoch")
+    run = _load_json(run_dir / "run.json", problems)
+    advice = _advice(run_dir, readings, target, problems)
+    charts = _charts(readings, advice.suggested_epoch)
+    out = Path(out_dir) if out_dir is not None else run_dir / REPORT_DIR
+    out.mkdir(parents=True, exist_ok=True)
+    for chart in charts:
+        (out / chart.name).write_bytes(chart.png)
+    page = out / "report.html"
+    title = f"sgdstab stability report: {run_dir.resolve().name}"
+    page.write_text(_page(title, advice, charts, readings, run, problems), encoding="utf-8")
+    return page

@@ -1,0 +1,258 @@
+"""report.html and its charts from a run directory; the ``report`` command."""
+
+from __future__ import annotations
+
+import argparse
+import base64
+import html
+import json
+import sys
+from html.parser import HTMLParser
+from pathlib import Path
+
+import matplotlib.image
+import pytest
+import torch
+import torch.nn.functional as F
+from torch import nn
+from torch.utils.data import DataLoader, TensorDataset
+
+from sgdstab import Constants, EpochReading, StabilityTracker, cli_report, read_history
+from sgdstab.advice import CAUTIONS, advise
+from sgdstab.report import write_report
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
+CHARTS = ("divergence.png", "stability.png", "gap.png", "losses.png")
+
+
+def _orchard(count: int, seed: int) -> TensorDataset:
+    """Generated apple-crate weighings (row norm <= 1, bias folded in) and a 'bruised' label."""
+    g = torch.Generator().manual_seed(seed)
+    x = torch.randn(count, 4, generator=g)
+    label = (x[:, 0] - 0.5 * x[:, 1] + 0.4 * torch.randn(count, generator=g) > 0).float()
+    rows = torch.cat([x, torch.ones(count, 1)], dim=1)
+    rows = rows / rows.norm(dim=1, keepdim=True).clamp(min=1.0)
+    return TensorDataset(rows, label.unsqueeze(1))
+
+
+def tracked_run(log_dir: Path, epochs: int = 5, target: float | None = 0.05) -> None:
+    """A small convex run with declared logistic-loss constants, ending with tracker.advise()."""
+    torch.manual_seed(0)
+    train, held_out = _orchard(160, 1), _orchard(80, 2)
+    rows = train.tensors[0]
+    lipschitz = float(rows.norm(dim=1).max())
+    model = nn.Linear(5, 1, bias=False)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.5)
+    loss = F.binary_cross_entropy_with_logits
+    loader = DataLoader(train, batch_size=16, shuffle=True,
+                        generator=torch.Generator().manual_seed(3))
+    constants = Constants(lipschitz=lipschitz, smoothness=lipschitz**2 / 4, convex=True)
+    with StabilityTracker(model, optimizer, train_set=train, loss_fn=loss, shadows=3,
+                          replacements=held_out, log_dir=log_dir, constants=constants,
+                          seed=0) as tracker:
+        for _ in range(epochs):
+            for x, y in tracker.batches(loader):
+                optimizer.zero_grad()
+                loss(model(x), y).backward()
+                optimizer.step()
+            tracker.finish_epoch()
+        tracker.advise(target=target)
+
+
+@pytest.fixture(scope="module")
+def run_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    path = tmp_path_factory.mktemp("run")
+    tracked_run(path)
+    return path
+
+
+class _Assets(HTMLParser):
+    """Every tag name and every src / href attribute of a page (stdlib html.parser)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.tags: list[str] = []
+        self.sources: list[str] = []
+        self.links: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.append(tag)
+        for name, value in attrs:
+            if name == "src":
+                self.sources.append(value or "")
+            if name == "href":
+                self.links.append(value or "")
+
+
+def _parse(page: Path) -> tuple[str, _Assets]:
+    text = page.read_text(encoding="utf-8")
+    parser = _Assets()
+    parser.feed(text)
+    return text, parser
+
+
+def _write_history(run_dir: Path, readings: list[EpochReading]) -> None:
+    run_dir.mkdir(parents=True, exist_ok=True)
+    with open(run_dir / "history.jsonl", "w", encoding="utf-8") as handle:
+        for reading in readings:
+            handle.write(reading.to_json() + "\n")
+
+
+def _synthetic(epoch: int, **fields) -> EpochReading:
+    base = dict(epoch=epoch, steps=10 * epoch, divergence=(0.01 * epoch, 0.02 * epoch),
+                audit_divergence=None, layer_divergence={}, loss_difference_max=0.01,
+                loss_difference_mean=0.005, gap_estimate=0.002 * epoch * epoch, gap_stderr=0.001,
+                train_loss=1.0 / epoch, holdout_loss=1.0 / epoch + 0.01)
+    base.update(fields)
+    return EpochReading(**base)
+
+
+# -- files and images ---------------------------------------------------------------------------
+
+def test_report_writes_every_chart_and_the_pngs_decode(run_dir: Path):
+    page = write_report(run_dir)
+    assert page == run_dir / "report" / "report.html"
+    assert page.is_file()
+    for name in CHARTS:
+        data = (page.parent / name).read_bytes()
+        assert data[:8] == PNG_SIGNATURE
+        image = matplotlib.image.imread(page.parent / name)  # matplotlib's own PNG reader
+        assert image.shape[0] == 360 and image.shape[1] == 700  # 7 x 3.6 inches at 100 dpi
+        assert image[..., :3].std() > 0.01  # something was drawn, not a blank canvas
+
+
+def test_html_is_self_contained_and_embeds_the_same_pngs(run_dir: Path):
+    page = write_report(run_dir)
+    text, assets = _parse(page)
+    assert "link" not in assets.tags and "script" not in assets.tags
+    assert assets.links == []
+    assert len(assets.sources) == len(CHARTS)
+    embedded = set()
+    for source in assets.sources:
+        prefix = "data:image/png;base64,"
+        assert source.startswith(prefix)
+        embedded.add(base64.b64decode(source[len(prefix):], validate=True))
+    assert embedded == {(page.parent / name).read_bytes() for name in CHARTS}
+    assert "http://" not in text and "https://" not in text
+    assert "url(" not in text  # no external CSS asset either
+
+
+def test_html_names_the_suggested_epoch_of_the_saved_advice(run_dir: Path):
+    saved = json.loads((run_dir / "advice.json").read_text())
+    assert saved["epochs_seen"] == 5
+    text, _ = _parse(write_report(run_dir))
+    epoch = saved["suggested_epoch"]
+    assert epoch is not None
+    assert f"Suggested stop: epoch {epoch} of 5" in text
+    assert f"(criterion: {saved['criterion']})" in text
+
+
+def test_html_shows_constants_bounds_and_cautions(run_dir: Path):
+    text, _ = _parse(write_report(run_dir))
+    assert "<strong>declared</strong>" in text
+    assert "expected" in text and "high probability" in text
+    # the run declares no loss bound, so the high-probability bound is reported with its reason
+    assert "loss bound (M) not declared" in text
+    for caution in CAUTIONS:
+        assert html.escape(caution, quote=True) in text
+
+
+def test_a_target_recomputes_the_advice(run_dir: Path, tmp_path: Path):
+    text, _ = _parse(write_report(run_dir, out_dir=tmp_path, target=1e-6))
+    assert "cannot be met" in text
+    assert (tmp_path / "report.html").is_file()
+
+
+# -- damaged, missing and stale inputs ----------------------------------------------------------
+
+def test_truncated_last_line_still_reports_with_a_warning(run_dir: Path, tmp_path: Path):
+    damaged = tmp_path / "damaged"
+    damaged.mkdir()
+    lines = (run_dir / "history.jsonl").read_text().splitlines()
+    (damaged / "history.jsonl").write_text("\n".join(lines[:-1]) + "\n" + lines[-1][:40])
+    for name in ("run.json", "advice.json"):
+        (damaged / name).write_bytes((run_dir / name).read_bytes())
+    with pytest.warns(UserWarning, match="truncated"):
+        page = write_report(damaged)
+    text, _ = _parse(page)
+    assert "truncated" in text
+    # advice.json covered 5 epochs, the readable history 4: the advice is recomputed
+    assert "recomputed" in text
+    expected = advise(read_history_quietly(damaged))
+    assert expected.epochs_seen == 4 and expected.suggested_epoch is not None
+    assert f"Suggested stop: epoch {expected.suggested_epoch} of 4" in text
+
+
+def read_history_quietly(path: Path) -> list[dict]:
+    with pytest.warns(UserWarning):
+        return read_history(path)
+
+
+def test_without_advice_json_the_advice_is_computed(tmp_path: Path):
+    readings = [_synthetic(e) for e in range(1, 9)]
+    _write_history(tmp_path, readings)
+    advice = advise(readings)
+    assert advice.criterion == "measured_risk"
+    text, _ = _parse(write_report(tmp_path))
+    assert f"Suggested stop: epoch {advice.suggested_epoch} of 8" in text
+    assert "No constants were given" in text
+    assert "run.json not found" in text
+
+
+def test_estimated_constants_and_inapplicable_bounds_are_labelled(tmp_path: Path):
+    estimated = {"lipschitz": 2.5, "smoothness": 7.0, "strong_convexity": 0.0,
+                 "loss_bound": None, "convex": False, "source": "estimated"}
+    reason = "optimizer is Adam: the bounds are proved for plain SGD (the tracker still measures)"
+    entry = {"value": None, "applicable": False, "reason": reason, "source": "s",
+             "assumptions": ["plain SGD"], "t0": None}
+    bounds = {"regime": "nonconvex", "path_applicable": False, "path_reason": reason,
+              "expected": entry, "uniform_stability": entry, "high_probability": entry}
+    _write_history(tmp_path, [_synthetic(e, constants=estimated, bounds=bounds)
+                              for e in range(1, 5)])
+    text, _ = _parse(write_report(tmp_path))
+    assert "<strong>estimated</strong>" in text
+    assert "indicative, not certified" in text
+    assert "optimizer is Adam" in text
+    assert "not applicable" in text
+
+
+def test_notes_are_escaped(tmp_path: Path):
+    _write_history(tmp_path, [_synthetic(1, notes=("<script>alert(1)</script>",))])
+    text, assets = _parse(write_report(tmp_path))
+    assert "script" not in assets.tags
+    assert "&lt;script&gt;" in text
+
+
+def test_empty_or_missing_history_is_refused(tmp_path: Path):
+    with pytest.raises(FileNotFoundError):
+        write_report(tmp_path)
+    (tmp_path / "history.jsonl").write_text("")
+    with pytest.raises(ValueError, match="no finished epoch"):
+        write_report(tmp_path)
+
+
+def test_missing_matplotlib_gives_a_clear_error(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    _write_history(tmp_path, [_synthetic(1)])
+    for name in ("matplotlib", "matplotlib.figure", "matplotlib.backends.backend_agg"):
+        monkeypatch.setitem(sys.modules, name, None)  # makes the import fail
+    with pytest.raises(ImportError, match=r"pip install 'sgdstab\[report\]'"):
+        write_report(tmp_path)
+    assert not (tmp_path / "report").exists()
+    args = argparse.Namespace(run_dir=str(tmp_path), out=None, target=None)
+    assert cli_report.run(args) == 3
+
+
+# -- the command --------------------------------------------------------------------------------
+
+def test_command_writes_the_report_and_prints_its_path(run_dir: Path, tmp_path: Path,
+                                                      capsys: pytest.CaptureFixture[str]):
+    parser = argparse.ArgumentParser()
+    cli_report.configure(parser)
+    args = parser.parse_args([str(run_dir), "--out", str(tmp_path / "out"), "--target", "0.1"])
+    assert cli_report.run(args) == 0
+    printed = capsys.readouterr().out.strip()
+    assert Path(printed) == tmp_path / "out" / "report.html"
+    assert Path(printed).is_file()
+    missing = parser.parse_args([str(tmp_path / "nowhere")])
+    assert cli_report.run(missing) == 2
+    assert "not found" in capsys.readouterr().err
