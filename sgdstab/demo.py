@@ -44,7 +44,8 @@ def glaze_tiles(count: int, seed: int) -> TensorDataset:
 def brier_loss(logits: torch.Tensor, grade: torch.Tensor, reduction: str = "mean") -> torch.Tensor:
     """Squared distance between predicted probabilities and the one-hot grade; values in [0, 2]."""
     probabilities = F.softmax(logits, dim=1)
-    target = F.one_hot(grade, GRADES).to(probabilities.dtype)
+    classes = torch.arange(GRADES, device=grade.device)
+    target = (grade.unsqueeze(1) == classes).to(probabilities.dtype)   # one-hot, vmap-friendly
     per_example = ((probabilities - target) ** 2).sum(dim=1)
     if reduction == "none":
         return per_example
