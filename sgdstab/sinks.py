@@ -67,8 +67,8 @@ def dashboard_layout(shadows: int) -> dict[str, dict[str, list[Any]]]:
         },
         "sgdstab generalization": {
             "replace-one gap estimate (+/- stderr) vs measured holdout-train gap":
-                ["Margin", ["gap/replace_one_estimate$", "gap/replace_one_lower$",
-                            "gap/replace_one_upper$"]],
+                ["Margin", ["gap/replace_one_estimate", "gap/replace_one_lower",
+                            "gap/replace_one_upper"]],  # margin series take exact tag names
             "gap estimate and measured gap":
                 ["Multiline", ["gap/replace_one_estimate$", "gap/holdout_minus_train$",
                                "bound/high_probability_gap$"]],
