@@ -24,6 +24,7 @@ Provenance (what was checked with the search tool, and what is from memory):
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -401,10 +402,12 @@ def all_index_pathwise(
     """Final pathwise bound (pathwise_divergence at step T) for every training index j = 0..n-1.
 
     batch_indices[t] holds the indices drawn at step t (repetition allowed); a (T, b) array or the
-    flat 1-D concatenation of all steps' indices (length sum_t b_t) is accepted too. Same source and
-    assumptions as pathwise_divergence. Vectorised: with eta_t <= 1 the per-step factor does not
-    depend on hits, so the result is one weighted np.bincount (np.add.at's faster equivalent);
-    otherwise each (index, step) hit carries a log-correction summed over that index's later hits.
+    flat 1-D concatenation of all steps' indices (length sum_t b_t) is accepted too. Source: HRS
+    2016 growth lemma (statement from memory), SCIENCE.md §2-3; assumptions as pathwise_divergence
+    (each index's bound holds whatever the data, so L max_j is the seeded algorithm's uniform
+    stability). Vectorised: with eta_t <= 1 the per-step factor does not depend on hits, so the
+    result is one weighted np.bincount (np.add.at's faster equivalent); otherwise each
+    (index, step) hit carries a log-correction summed over that index's later hits.
     """
     a = _step_sizes(step_sizes)
     b = _batch_sizes(batch_sizes, a.size)
@@ -649,10 +652,10 @@ def high_probability_gap(
     delta: float,
     two_sided: bool = False,
 ) -> Bound:
-    """R - R_S <= beta_n + (2 n beta_n + M) sqrt(ln(1/delta) / (2n)) w.p. >= 1 - delta (ln(2/delta)
-    and |R - R_S| when two_sided).
+    """R - R_S <= beta_n + (2 n beta_n + M) sqrt(ln(1/delta) / (2n)) with probability >= 1 - delta.
 
-    Source: McDiarmid's inequality (SCIENCE.md §3). Assumes A is beta_n-uniformly stable under
+    two_sided: |R - R_S| <= the same with ln(2/delta). Source: McDiarmid's inequality (SCIENCE.md
+    §3; derivation below). Assumes A is beta_n-uniformly stable under
     replacement of one example, loss in [0, M], i.i.d. sample of size n.
     """
     # Derivation: replacing z_i moves R(A(S)) by <= beta_n and R_S(A(S)) by <= beta_n + M/n, so the
@@ -1113,7 +1116,7 @@ def max_steps(
         strong_convexity=strong_convexity, batch_size=batch_size, loss_bound=loss_bound,
         delta=delta, bound=bound,
     )  # fmt: skip
-    at = _cached(lambda t: planned_bound(t, **problem))
+    at = functools.lru_cache(maxsize=None)(lambda t: planned_bound(t, **problem))
     first = at(1)  # every schedule defines step 1; its conditions are checked there
     plan = _plan_answer("steps", target, bound, first.source)
     if not first.applicable:
@@ -1166,17 +1169,6 @@ def _limit_value(stability_limit: float, problem: dict) -> float:
     ).value
 
 
-def _cached(function: Callable[[float], Bound]) -> Callable[[float], Bound]:
-    memo: dict[float, Bound] = {}
-
-    def cached(x: float) -> Bound:
-        if x not in memo:
-            memo[x] = function(x)
-        return memo[x]
-
-    return cached
-
-
 def _plan_answer(quantity: str, target: float, bound: str, source: str):
     def make(value, applicable, reason, **extra) -> PlanAnswer:
         return PlanAnswer(
@@ -1226,7 +1218,9 @@ def max_step_size(
         strong_convexity=gamma, batch_size=batch_size, loss_bound=loss_bound, delta=delta,
         bound=bound,
     )  # fmt: skip
-    at = _cached(lambda peak: planned_bound(steps, schedule=shape.with_peak(peak), **problem))
+    at = functools.lru_cache(maxsize=None)(
+        lambda peak: planned_bound(steps, schedule=shape.with_peak(peak), **problem)
+    )
     floor = at(shape.peak * 1e-300)  # the bound as the step sizes vanish
     plan = _plan_answer("step_size", target, bound, floor.source)
     if not floor.applicable:
@@ -1288,7 +1282,7 @@ def min_train_size(
         smoothness=smoothness, strong_convexity=strong_convexity, batch_size=batch_size,
         loss_bound=loss_bound, delta=delta, bound=bound,
     )  # fmt: skip
-    at = _cached(lambda size: planned_bound(steps, n=size, **problem))
+    at = functools.lru_cache(maxsize=None)(lambda size: planned_bound(steps, n=size, **problem))
     plan = _plan_answer("train_size", target, bound, at(2).source)
     if not at(2).applicable:
         return plan(None, False, at(2).reason)

@@ -139,6 +139,11 @@ def _print_report(args: argparse.Namespace) -> None:
         print()
         for name, reason in reasons.items():
             print(f"n/a ({name}): {reason}")
+    if args.loss_bound is not None and any(
+        b.applicable and b.value >= args.loss_bound for column in columns.values() for b in column
+    ):
+        print()
+        print(f"note: values >= M = {args.loss_bound:.6g} say nothing (every loss lies in [0, M])")
     sources = sorted({b.source for column in columns.values() for b in column if b.applicable})
     if sources:
         print()

@@ -86,6 +86,15 @@ def test_step_decay_schedule_by_epoch(capsys):
     assert [float(row[3]) for row in rows] == pytest.approx([0.02, 0.04, 0.05, 0.06])
 
 
+def test_values_at_or_above_the_loss_bound_are_called_vacuous(capsys):
+    # With n = 1000 and M = 1 the McDiarmid gap is at least sqrt(ln(20) / 2000) ~ 0.039; with
+    # M = 0.01 every gap value exceeds M, which the output must say.
+    _, out, _ = _run(CONVEX + ["--loss-bound", "0.01"], capsys)
+    assert "note: values >= M = 0.01 say nothing" in out
+    _, out, _ = _run(CONVEX[:-4] + ["--epochs", "1", "--batch-size", "1000"], capsys)
+    assert "say nothing" not in out
+
+
 def test_nonconvex_c_over_t_shows_the_closed_form(capsys):
     # HRS 2016 non-convex closed form (from memory) with beta = c = L = 1, n = 11, T = 11 per epoch.
     argv = ["--regime", "nonconvex", "-n", "11", "--lipschitz", "1", "--smoothness", "1",
