@@ -7,6 +7,7 @@ from .tracker import AssumptionWarning, LockstepWarning, ShadowFaultWarning, Sta
 
 __all__ = [
     "AssumptionWarning",
+    "DataParallelStabilityTracker",
     "Constants",
     "EpochReading",
     "LockstepError",
@@ -20,3 +21,12 @@ __all__ = [
 ]
 
 __version__ = "0.1.0"
+
+
+def __getattr__(name: str):
+    # imported on first use, so builds without torch.distributed still import sgdstab
+    if name == "DataParallelStabilityTracker":
+        from .distributed import DataParallelStabilityTracker
+
+        return DataParallelStabilityTracker
+    raise AttributeError(f"module 'sgdstab' has no attribute {name!r}")
