@@ -1,32 +1,43 @@
-"""sgdstab: track the algorithmic stability of SGD inside your own PyTorch training loop."""
+"""sgdstab: track the algorithmic stability of SGD inside your own PyTorch training loop.
 
-from .constants import Constants, estimate_lipschitz, estimate_smoothness
-from .lockstep import LockstepError, NeighbourSpec
-from .reading import EpochReading, read_history
-from .tracker import AssumptionWarning, LockstepWarning, ShadowFaultWarning, StabilityTracker
+Names are imported on first use, so ``import sgdstab.bounds`` (pure numpy/scipy) loads no torch.
+"""
 
-__all__ = [
-    "AssumptionWarning",
-    "DataParallelStabilityTracker",
-    "Constants",
-    "EpochReading",
-    "LockstepError",
-    "LockstepWarning",
-    "NeighbourSpec",
-    "ShadowFaultWarning",
-    "StabilityTracker",
-    "estimate_lipschitz",
-    "estimate_smoothness",
-    "read_history",
-]
+from __future__ import annotations
+
+import importlib
+from typing import Any
 
 __version__ = "0.1.0"
 
+_WHERE = {
+    "StabilityTracker": "tracker",
+    "AssumptionWarning": "tracker",
+    "LockstepWarning": "tracker",
+    "ShadowFaultWarning": "tracker",
+    "DataParallelStabilityTracker": "distributed",
+    "Constants": "constants",
+    "estimate_lipschitz": "constants",
+    "estimate_smoothness": "constants",
+    "LockstepError": "lockstep",
+    "NeighbourSpec": "lockstep",
+    "EpochReading": "reading",
+    "read_history": "reading",
+    "StopAdvice": "advice",
+    "advise": "advice",
+    "write_report": "report",
+}
 
-def __getattr__(name: str):
-    # imported on first use, so builds without torch.distributed still import sgdstab
-    if name == "DataParallelStabilityTracker":
-        from .distributed import DataParallelStabilityTracker
+__all__ = sorted(_WHERE)
 
-        return DataParallelStabilityTracker
+
+def __getattr__(name: str) -> Any:
+    if name in _WHERE:
+        value = getattr(importlib.import_module(f".{_WHERE[name]}", __name__), name)
+        globals()[name] = value
+        return value
     raise AttributeError(f"module 'sgdstab' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_WHERE))

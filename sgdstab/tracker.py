@@ -335,13 +335,19 @@ class StabilityTracker:
     # -- readings -------------------------------------------------------------------------------
     def _divergences(self) -> tuple[list[float], dict[str, float], float | None]:
         main = trainable_parameters(self.model)
+        audited_against = main
+        reference = getattr(self.engine, "reference_parameters", lambda: None)()
+        if reference is not None:   # batched engine: measure against its no-swap reference run,
+            main = [(name, reference[name]) for name, _ in main]   # which shares their rounding
+            if self.engine.reference_follows_main():   # else the audit reads the gap to the main
+                audited_against = main
         layer: dict[str, float] = {name: 0.0 for name, _ in main}
         values = []
         for shadow in self.shadows:
             values.append(self._divergence(shadow, main, layer))
         audit = None
         if self.audit_shadow is not None:
-            audit = self._divergence(self.audit_shadow, main, None)
+            audit = self._divergence(self.audit_shadow, audited_against, None)
         return values, layer, audit
 
     def _divergence(self, shadow: Shadow, main: list[tuple[str, nn.Parameter]],
@@ -502,7 +508,7 @@ class StabilityTracker:
             batch_sizes=history.batch_sizes(), n=self.n, lipschitz=effective.lipschitz,
             smoothness=effective.smoothness, strong_convexity=effective.strong_convexity,
             loss_bound=effective.loss_bound, shadow_hits=history.shadow_hits(),
-            batch_indices=history.batch_indices(), delta=self.delta,
+            batch_indices=history.flat_indices(), delta=self.delta,
             not_applicable_reason=self.optimizer_reason)
         if effective.source != "declared":
             notes.append("bounds use ESTIMATED constants (lower estimates of L and beta): they "
