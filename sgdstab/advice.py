@@ -6,7 +6,9 @@ It reports four criteria and suggests one epoch:
 - ``bound_risk``: the epoch minimising training loss + expected stability bound. When the bound
   applies, ``E[R(A(S))] <= E[R_S(A(S))] + eps_stab`` (Hardt, Recht & Singer 2016, Thm 2.2), so the
   sum is an upper bound on expected test risk, with this run's training loss standing in for its
-  expectation.
+  expectation. An epoch where the sum is at least the loss range ``M`` (when declared) is
+  *vacuous*: the risk is at most ``M`` anyway. Vacuous epochs are never chosen; when every epoch
+  is vacuous the criterion says so and the measured criteria decide.
 - ``bound_budget`` (only with ``target``): the last epoch whose bound stays within the target, and
   a projection of how many more epochs the budget allows (see ``BudgetProjection``).
 - ``measured_risk``: the epoch minimising training loss + the on-average replace-one gap estimate
@@ -75,6 +77,7 @@ class AdviceRow:
     bound_applies: bool
     bound_reason: str
     bound_risk: float | None
+    bound_vacuous: bool
     gap_estimate: float | None
     gap_stderr: float | None
     measured_risk: float | None
@@ -396,11 +399,15 @@ def _plan_projection(plan: TrainingPlan, reading: EpochReading, target: float,
                                 f"{answer.reason}")
     allowed = int(answer.value)
     extra = max(0, math.floor((allowed - reading.steps) / steps_per_epoch))
+    plan_text = (f"the planner allows {allowed} steps in all within {target:g} (step size "
+                 f"{plan.step_size:g}, batch {plan.batch_size}, n={plan.n}); {reading.steps} "
+                 "are done, so ")
+    if allowed < reading.steps:
+        plan_text += "the budget is already spent"
+    else:
+        plan_text += f"about {extra} more epoch(s) of {steps_per_epoch:g} steps stay within it"
     return BudgetProjection(target, "expected", last_within, extra, False, method, None,
-                            f"the planner allows {allowed} steps in all (step size "
-                            f"{plan.step_size:g}, batch {plan.batch_size}, n={plan.n}); "
-                            f"{reading.steps} are done, so about {extra} more epoch(s) of "
-                            f"{steps_per_epoch:g} steps stay within {target:g}")
+                            plan_text)
 
 
 def _project(values: list[tuple[int, float]], target: float, bound_name: str,
@@ -462,7 +469,7 @@ def _argmin(pairs: list[tuple[int, float]]) -> tuple[int, float] | None:
 
 def _edge_note(epoch: int, last: int, count: int) -> str:
     if count == 1:
-        return "; only one epoch has a value, so this is no minimum yet"
+        return "; only one epoch qualifies, so this is no minimum yet"
     if epoch == last:
         return "; it is the last recorded epoch, so the sum may still be falling"
     return ""
@@ -503,11 +510,14 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
         if budget_on == "high_probability" and applies:
             applies_high, _ = _bound_status(reading, high, "high_probability")
             budget_value = high if applies_high else None
+        risk = train + expected if applies and train is not None else None
+        loss_range = _finite((reading.constants or {}).get("loss_bound"))
         rows.append(AdviceRow(
             epoch=int(reading.epoch), steps=int(reading.steps), train_loss=train,
             holdout_loss=_finite(reading.holdout_loss), expected_bound=expected,
             high_probability_gap=high, bound_applies=applies, bound_reason=why,
-            bound_risk=train + expected if applies and train is not None else None,
+            bound_risk=risk,
+            bound_vacuous=risk is not None and loss_range is not None and risk >= loss_range,
             gap_estimate=gap, gap_stderr=_finite(reading.gap_stderr),
             measured_risk=train + gap if train is not None and gap is not None else None,
             mean_divergence=float(table[i].mean()) if table is not None else None,
@@ -525,10 +535,17 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
 
     criteria = []
     # (a) training loss + expected bound
-    pairs = [(r.epoch, r.bound_risk) for r in rows if r.bound_risk is not None] \
-        if bound_applies else []
+    pairs = [(r.epoch, r.bound_risk) for r in rows
+             if r.bound_risk is not None and not r.bound_vacuous] if bound_applies else []
+    vacuous = [r for r in rows if r.bound_vacuous]
     best = _argmin(pairs)
-    if best is not None:
+    if best is None and bound_applies and vacuous:
+        loss_range = (ordered[-1].constants or {}).get("loss_bound")
+        bound_pick = Criterion("bound_risk", None, None,
+                               "The bound is vacuous at every epoch: training loss + bound is at "
+                               f"least the loss range M = {loss_range:g}, which bounds the risk "
+                               "anyway.")
+    elif best is not None:
         kind = "certified" if certified else "indicative (estimated constants)"
         bound_pick = Criterion("bound_risk", best[0], best[1],
                                f"Training loss + expected stability bound is smallest at epoch "
@@ -620,6 +637,8 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
         return StopAdvice(None, None, reason, tuple(rows), tuple(criteria), budget,
                           bound_applies, bound_reason, certified, len(rows))
     reason = chosen_criterion.reason
+    if bound_applies and bound_pick.epoch is None and chosen_criterion is not budget_pick:
+        reason = f"{bound_pick.reason} Measured criterion: {reason}"
     if chosen_criterion is bound_pick and budget_pick is not None and budget_pick.epoch is None:
         reason = f"{reason} The target cannot be met: {budget_pick.reason}"
     if not bound_applies and chosen_criterion.name != "bound_risk":

@@ -67,6 +67,27 @@ def _has(values: Sequence[float]) -> bool:
     return any(math.isfinite(v) for v in values)
 
 
+#: A bound more than this many times the largest measured value is left off its chart (its
+#: curve would flatten everything else), and the caption says so.
+OFF_CHART = 1e6
+
+
+def _clip(values: Sequence[float], reference: float) -> tuple[list[float], float | None]:
+    """``values`` with points above ``OFF_CHART * reference`` as NaN, and the largest dropped."""
+    if not math.isfinite(reference) or reference <= 0:
+        return list(values), None
+    limit = OFF_CHART * reference
+    dropped = [v for v in values if math.isfinite(v) and v > limit]
+    return [math.nan if v > limit else v for v in values], (max(dropped) if dropped else None)
+
+
+def _off_chart_note(largest: float | None, what: str) -> str:
+    if largest is None:
+        return ""
+    return (f" Points of the {what} more than {OFF_CHART:.0e} times the largest measured value "
+            f"are left off the chart (largest: {largest:.3g}).")
+
+
 class _Canvas:
     """A figure with one axes, a log scale when the values span many decades, and a stop mark."""
 
@@ -117,17 +138,24 @@ def _charts(readings: Sequence[EpochReading], stop: int | None) -> list[Chart]:
     colours = [f"C{k % 10}" for k in range(shadows)]
 
     canvas = _Canvas("Each shadow's divergence and its pathwise bound", "||w - w'||")
+    measured_all = [[_number(r.divergence[k]) if k < len(r.divergence) else math.nan
+                     for r in readings] for k in range(shadows)]
+    reference = max((v for series in measured_all for v in series if math.isfinite(v)),
+                    default=math.nan)
+    dropped: list[float] = []
     for k in range(shadows):
-        measured = [_number(r.divergence[k]) if k < len(r.divergence) else math.nan
-                    for r in readings]
-        bound = [_number(r.path_bound[k]) if k < len(r.path_bound) else math.nan
-                 for r in readings]
+        measured = measured_all[k]
+        bound, largest = _clip([_number(r.path_bound[k]) if k < len(r.path_bound) else math.nan
+                                for r in readings], reference)
+        if largest is not None:
+            dropped.append(largest)
         canvas.line(epochs, measured, color=colours[k], marker="o", markersize=3,
                     label=f"shadow {k}")
-        canvas.line(epochs, bound, color=colours[k], linestyle="--",
+        canvas.line(epochs, bound, color=colours[k], linestyle="--", marker="x", markersize=4,
                     label="pathwise bound (dashed, per shadow)" if k == 0 else None)
     divergence = Chart("divergence.png", "Measured parameter divergence of each shadow (solid) "
-                       "with its pathwise bound (dashed, same colour) where one applies.",
+                       "with its pathwise bound (dashed, same colour) where one applies."
+                       + _off_chart_note(max(dropped, default=None), "pathwise bounds"),
                        canvas.png(stop, "no divergence recorded"))
 
     canvas = _Canvas("Loss difference and the expected stability bound", "loss difference")
@@ -135,12 +163,18 @@ def _charts(readings: Sequence[EpochReading], stop: int | None) -> list[Chart]:
                 marker="o", markersize=3, label="max |f(w;z) - f(w';z)|")
     canvas.line(epochs, [_number(r.loss_difference_mean) for r in readings], color="C1",
                 marker="o", markersize=3, label="mean |f(w;z) - f(w';z)|")
-    canvas.line(epochs, [_number(r.expected_bound) for r in readings], color="C3",
-                linestyle="--", label="expected stability bound")
-    canvas.line(epochs, [_number(r.uniform_stability) for r in readings], color="C4",
-                linestyle="-.", label="seeded uniform stability bound")
+    reference = max((v for r in readings for v in (_number(r.loss_difference_max),
+                                                   _number(r.loss_difference_mean))
+                     if math.isfinite(v)), default=math.nan)
+    expected, largest_expected = _clip([_number(r.expected_bound) for r in readings], reference)
+    uniform, largest_uniform = _clip([_number(r.uniform_stability) for r in readings], reference)
+    canvas.line(epochs, expected, color="C3", linestyle="--", label="expected stability bound")
+    canvas.line(epochs, uniform, color="C4", linestyle="-.",
+                label="seeded uniform stability bound")
+    largest = max((v for v in (largest_expected, largest_uniform) if v is not None), default=None)
     stability = Chart("stability.png", "Measured loss differences between the main model and "
-                      "the shadows, with the expected stability bound.",
+                      "the shadows, with the expected stability bound."
+                      + _off_chart_note(largest, "bounds"),
                       canvas.png(stop, "no loss difference recorded"))
 
     canvas = _Canvas("Generalization gap: replace-one estimate and measured", "gap")

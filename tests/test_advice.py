@@ -348,3 +348,28 @@ def test_summary_is_short_and_names_the_epoch():
     assert "epoch 7" in text.splitlines()[0]
     assert "held-out" in text
     assert len(text.splitlines()) <= 10
+
+
+def test_a_vacuous_bound_does_not_choose_and_the_measured_gap_decides():
+    # loss in [0, 1]; the bound alone is 1 or more: train + bound >= M at every epoch
+    constants = dict(DECLARED, loss_bound=1.0, convex=False, source="estimated")
+    readings = [reading(e, train=1.0 / (e + 1), bound=1.0 + 0.001 * e, gap=0.003 * e * e,
+                        constants=constants) for e in range(1, 11)]
+    advice = advise(readings)
+    assert all(r.bound_vacuous for r in advice.rows)
+    assert advice.criterion_named("bound_risk").epoch is None
+    assert "vacuous" in advice.criterion_named("bound_risk").reason
+    assert advice.criterion == "measured_risk"
+    epochs = np.arange(1, 11)
+    assert advice.suggested_epoch == int(epochs[np.argmin(1 / (epochs + 1) + 0.003 * epochs**2)])
+    assert "vacuous" in advice.reason
+
+
+def test_only_the_non_vacuous_epochs_compete():
+    constants = dict(DECLARED, loss_bound=1.0)
+    bounds = [0.2, 0.3, 0.99, 0.99, 0.99]  # from epoch 3 on, train + bound >= 1
+    readings = [reading(e, train=0.5 - 0.05 * e, bound=b, constants=constants)
+                for e, b in enumerate(bounds, start=1)]
+    advice = advise(readings)
+    assert [r.bound_vacuous for r in advice.rows] == [False, False, True, True, True]
+    assert advice.suggested_epoch == 1  # 0.45 + 0.2 = 0.65 < 0.4 + 0.3 = 0.7
