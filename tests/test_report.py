@@ -256,3 +256,10 @@ def test_command_writes_the_report_and_prints_its_path(run_dir: Path, tmp_path: 
     missing = parser.parse_args([str(tmp_path / "nowhere")])
     assert cli_report.run(missing) == 2
     assert "not found" in capsys.readouterr().err
+
+
+def test_the_package_command_line_runs_the_report(run_dir: Path, tmp_path: Path,
+                                                  capsys: pytest.CaptureFixture[str]):
+    cli = pytest.importorskip("sgdstab.cli")
+    assert cli.main(["report", str(run_dir), "--out", str(tmp_path)]) == 0
+    assert Path(capsys.readouterr().out.strip()) == tmp_path / "report.html"
