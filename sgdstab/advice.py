@@ -461,20 +461,6 @@ def _project(values: list[tuple[int, float]], target: float, bound_name: str,
 # ---------------------------------------------------------------------------------------------
 
 
-def _argmin(pairs: list[tuple[int, float]]) -> tuple[int, float] | None:
-    if not pairs:
-        return None
-    return min(pairs, key=lambda pair: (pair[1], pair[0]))
-
-
-def _edge_note(epoch: int, last: int, count: int) -> str:
-    if count == 1:
-        return "; only one epoch qualifies, so this is no minimum yet"
-    if epoch == last:
-        return "; it is the last recorded epoch, so the sum may still be falling"
-    return ""
-
-
 def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float | None = None,
            *, budget_on: str = "expected", plan: TrainingPlan | None = None,
            consecutive: int = 2, relative_noise: float = 0.05,
@@ -498,6 +484,46 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
                           "no readings", False, 0)
 
     table = _divergence_matrix(ordered)
+    rows = _rows(ordered, table, target, budget_on)
+    bound_applies = rows[-1].bound_applies and not any(r.assumption_violated for r in ordered)
+    bound_reason = "" if bound_applies else next(
+        (r.bound_reason for r in reversed(rows) if not r.bound_applies), "")
+    constants = ordered[-1].constants or {}
+    certified = bound_applies and constants.get("source") == "declared"
+
+    bound_pick = _bound_criterion(rows, bound_applies, bound_reason, certified, constants)
+    budget, budget_pick = None, None
+    if target is not None:
+        budget, budget_pick = _budget_criterion(rows, ordered[-1], target, budget_on, plan,
+                                                bound_applies)
+    measured_pick = _measured_criterion(rows, ordered)
+    growth_pick = _growth_criterion(rows, ordered, table, consecutive, relative_noise,
+                                    noise_sigmas)
+    criteria = tuple(c for c in (bound_pick, budget_pick, measured_pick, growth_pick)
+                     if c is not None)
+
+    def result(epoch: int | None, name: str | None, reason: str) -> StopAdvice:
+        return StopAdvice(epoch, name, reason, tuple(rows), criteria, budget, bound_applies,
+                          bound_reason, certified, len(rows))
+
+    chosen = _choose(bound_pick, budget_pick, measured_pick, growth_pick)
+    if chosen is None:
+        return result(None, None, "no criterion could choose an epoch: "
+                      + ("no bound applies and " if not bound_applies else "")
+                      + "neither a gap estimate nor a divergence acceleration is available")
+    reason = chosen.reason
+    if bound_applies and bound_pick.epoch is None and chosen is not budget_pick:
+        reason = f"{bound_pick.reason} Measured criterion: {reason}"
+    if chosen is bound_pick and budget_pick is not None and budget_pick.epoch is None:
+        reason = f"{reason} The target cannot be met: {budget_pick.reason}"
+    if not bound_applies:
+        reason = f"No stability bound applies ({bound_reason}); measured criterion: {reason}"
+    return result(chosen.epoch, chosen.name, reason)
+
+
+def _rows(ordered: Sequence[EpochReading], table: np.ndarray | None, target: float | None,
+          budget_on: str) -> list[AdviceRow]:
+    """The per-epoch table behind the advice."""
     rates = _rates(ordered, table) if table is not None else None
     rows = []
     for i, reading in enumerate(ordered):
@@ -506,10 +532,10 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
         applies, why = _bound_status(reading, expected, "expected")
         train = _finite(reading.train_loss)
         gap = _finite(reading.gap_estimate)
-        budget_value = expected if budget_on == "expected" else high
-        if budget_on == "high_probability" and applies:
+        budget_value = expected
+        if budget_on == "high_probability":
             applies_high, _ = _bound_status(reading, high, "high_probability")
-            budget_value = high if applies_high else None
+            budget_value = high if applies and applies_high else None
         risk = train + expected if applies and train is not None else None
         loss_range = _finite((reading.constants or {}).get("loss_bound"))
         rows.append(AdviceRow(
@@ -524,131 +550,118 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
             divergence_rate=_finite(rates[i].mean()) if rates is not None else None,
             within_target=(None if target is None or not applies or budget_value is None
                            else budget_value <= target)))
+    return rows
 
-    last = rows[-1].epoch
-    any_violated = any(r.assumption_violated for r in ordered)
-    bound_applies = rows[-1].bound_applies and not any_violated
-    bound_reason = "" if bound_applies else next(
-        (r.bound_reason for r in reversed(rows) if not r.bound_applies), "")
-    constants = ordered[-1].constants or {}
-    certified = bound_applies and constants.get("source") == "declared"
 
-    criteria = []
-    # (a) training loss + expected bound
+def _argmin(pairs: list[tuple[int, float]]) -> tuple[int, float] | None:
+    if not pairs:
+        return None
+    return min(pairs, key=lambda pair: (pair[1], pair[0]))
+
+
+def _edge_note(epoch: int, last: int, count: int) -> str:
+    if count == 1:
+        return "; only one epoch qualifies, so this is no minimum yet"
+    if epoch == last:
+        return "; it is the last recorded epoch, so the sum may still be falling"
+    return ""
+
+
+def _bound_criterion(rows: Sequence[AdviceRow], bound_applies: bool, bound_reason: str,
+                     certified: bool, constants: Mapping[str, Any]) -> Criterion:
+    """(a) the epoch minimising training loss + expected bound, over non-vacuous epochs."""
+    name = "bound_risk"
+    if not bound_applies:
+        return Criterion(name, None, None, f"No stability bound applies: {bound_reason}.")
     pairs = [(r.epoch, r.bound_risk) for r in rows
-             if r.bound_risk is not None and not r.bound_vacuous] if bound_applies else []
-    vacuous = [r for r in rows if r.bound_vacuous]
+             if r.bound_risk is not None and not r.bound_vacuous]
     best = _argmin(pairs)
-    if best is None and bound_applies and vacuous:
-        loss_range = (ordered[-1].constants or {}).get("loss_bound")
-        bound_pick = Criterion("bound_risk", None, None,
-                               "The bound is vacuous at every epoch: training loss + bound is at "
-                               f"least the loss range M = {loss_range:g}, which bounds the risk "
-                               "anyway.")
-    elif best is not None:
+    if best is not None:
         kind = "certified" if certified else "indicative (estimated constants)"
-        bound_pick = Criterion("bound_risk", best[0], best[1],
-                               f"Training loss + expected stability bound is smallest at epoch "
-                               f"{best[0]} ({best[1]:.4g}), an upper bound on expected test risk "
-                               f"under the bound's assumptions, {kind}"
-                               + _edge_note(best[0], last, len(pairs)) + ".")
-    elif bound_applies:
-        bound_pick = Criterion("bound_risk", None, None,
-                               "No epoch has both a training loss and an applicable bound.")
-    else:
-        bound_pick = Criterion("bound_risk", None, None,
-                               f"No stability bound applies: {bound_reason}.")
-    criteria.append(bound_pick)
+        return Criterion(name, best[0], best[1],
+                         f"Training loss + expected stability bound is smallest at epoch "
+                         f"{best[0]} ({best[1]:.4g}), an upper bound on expected test risk under "
+                         f"the bound's assumptions, {kind}"
+                         + _edge_note(best[0], rows[-1].epoch, len(pairs)) + ".")
+    if any(r.bound_vacuous for r in rows):
+        return Criterion(name, None, None,
+                         "The bound is vacuous at every epoch: training loss + bound is at least "
+                         f"the loss range M = {constants.get('loss_bound'):g}, which bounds the "
+                         "risk anyway.")
+    return Criterion(name, None, None, "No epoch has both a training loss and an applicable "
+                     "bound.")
 
-    # (b) target
+
+def _budget_criterion(rows: Sequence[AdviceRow], last: EpochReading, target: float,
+                      budget_on: str, plan: TrainingPlan | None, bound_applies: bool
+                      ) -> tuple[BudgetProjection, Criterion]:
+    """(b) the last epoch within the target, and how many more epochs the budget allows."""
+    values = []
+    if bound_applies:
+        for r in rows:
+            value = r.expected_bound if budget_on == "expected" else r.high_probability_gap
+            if r.within_target is not None and value is not None:
+                values.append((r.epoch, value))
+    last_within = None
+    for epoch, value in values:  # the last epoch of the first unbroken run within the target
+        if value > target:
+            break
+        last_within = epoch
     budget = None
-    budget_pick = None
-    if target is not None:
-        values = [(r.epoch, r.expected_bound if budget_on == "expected" else
-                   r.high_probability_gap) for r in rows if r.within_target is not None]
-        values = [(e, v) for e, v in values if v is not None]
-        if not bound_applies:
-            values = []
-        within = [e for e, v in values if v <= target]
-        last_within = None
-        for epoch, value in values:  # the last epoch of the first unbroken run within the target
-            if value > target:
-                break
-            last_within = epoch
-        budget = None
-        if plan is not None and budget_on == "expected" and values:
-            span = rows[-1].steps - (rows[-2].steps if len(rows) > 1 else 0)
-            budget = _plan_projection(plan, ordered[-1], target, last_within, span)
-        if budget is None:
-            budget = _project(values, target, budget_on, last_within)
-        if not within:
-            reason = (budget.reason if values else
-                      f"No applicable bound to hold to the target {target:g}.")
-            budget_pick = Criterion("bound_budget", None, None, reason[:1].upper() + reason[1:])
-        else:
-            chosen = dict(values)[last_within] if last_within is not None else None
-            budget_pick = Criterion(
-                "bound_budget", last_within, chosen,
-                f"Epoch {last_within} is the last whose {budget_on} bound ({chosen:.4g}) stays "
-                f"within the target {target:g}." if last_within is not None else
-                "The bound exceeded the target from the first epoch.")
-        criteria.append(budget_pick)
+    if plan is not None and budget_on == "expected" and values:
+        span = rows[-1].steps - (rows[-2].steps if len(rows) > 1 else 0)
+        budget = _plan_projection(plan, last, target, last_within, span)
+    if budget is None:
+        budget = _project(values, target, budget_on, last_within)
+    name = "bound_budget"
+    if last_within is None:
+        reason = budget.reason if values else f"no applicable bound to hold to {target:g}"
+        return budget, Criterion(name, None, None, reason[:1].upper() + reason[1:] + ".")
+    chosen = dict(values)[last_within]
+    return budget, Criterion(name, last_within, chosen,
+                             f"Epoch {last_within} is the last whose {budget_on} bound "
+                             f"({chosen:.4g}) stays within the target {target:g}.")
 
-    # (c) measured
+
+def _measured_criterion(rows: Sequence[AdviceRow], ordered: Sequence[EpochReading]
+                        ) -> Criterion:
+    """(c) the epoch minimising training loss + the replace-one gap estimate."""
     pairs = [(r.epoch, r.measured_risk) for r in rows if r.measured_risk is not None]
     best = _argmin(pairs)
     if best is not None:
-        measured_pick = Criterion("measured_risk", best[0], best[1],
-                                  f"Training loss + replace-one gap estimate is smallest at epoch "
-                                  f"{best[0]} ({best[1]:.4g}), an estimate of test risk, not a "
-                                  "bound" + _edge_note(best[0], last, len(pairs)) + ".")
-    else:
-        gap_note = next((n for r in reversed(ordered) for n in r.notes if "gap estimate" in n),
-                        "no gap estimate was recorded")
-        measured_pick = Criterion("measured_risk", None, None,
-                                  f"Unavailable: {gap_note.rstrip('.')}.")
-    criteria.append(measured_pick)
+        return Criterion("measured_risk", best[0], best[1],
+                         f"Training loss + replace-one gap estimate is smallest at epoch "
+                         f"{best[0]} ({best[1]:.4g}), an estimate of test risk, not a bound"
+                         + _edge_note(best[0], rows[-1].epoch, len(pairs)) + ".")
+    gap_note = next((n for r in reversed(ordered) for n in r.notes if "gap estimate" in n),
+                    "no gap estimate was recorded")
+    return Criterion("measured_risk", None, None, f"Unavailable: {gap_note.rstrip('.')}.")
 
+
+def _growth_criterion(rows: Sequence[AdviceRow], ordered: Sequence[EpochReading],
+                      table: np.ndarray | None, consecutive: int, relative_noise: float,
+                      noise_sigmas: float) -> Criterion:
+    """(c) the epoch after which the measured divergence grows faster than linearly."""
+    name = "divergence_acceleration"
     if table is None:
-        growth_pick = Criterion("divergence_acceleration", None, None,
-                                "Unavailable: no shadow has a finite divergence at every epoch.")
-    else:
-        turn = _acceleration(ordered, table, consecutive, relative_noise, noise_sigmas)
-        if turn is not None:
-            growth_pick = Criterion("divergence_acceleration", turn, _finite(table[
-                [r.epoch for r in rows].index(turn)].mean()),
-                f"After epoch {turn} the mean divergence's growth per step rose {consecutive} "
-                f"epoch(s) running beyond noise: the shadows are separating faster than "
-                "linearly.")
-        elif len(rows) < consecutive + 1:
-            growth_pick = Criterion("divergence_acceleration", None, None,
-                                    f"Too few epochs: the rule needs {consecutive + 1}, "
-                                    f"{len(rows)} recorded.")
-        else:
-            growth_pick = Criterion("divergence_acceleration", None, None,
-                                    "The divergence has not grown faster than linearly so far.")
-    criteria.append(growth_pick)
-
-    chosen_criterion = _choose(bound_pick, budget_pick, measured_pick, growth_pick)
-    if chosen_criterion is None:
-        reason = ("no criterion could choose an epoch: "
-                  + ("no bound applies and " if not bound_applies else "")
-                  + "neither a gap estimate nor a divergence acceleration is available")
-        return StopAdvice(None, None, reason, tuple(rows), tuple(criteria), budget,
-                          bound_applies, bound_reason, certified, len(rows))
-    reason = chosen_criterion.reason
-    if bound_applies and bound_pick.epoch is None and chosen_criterion is not budget_pick:
-        reason = f"{bound_pick.reason} Measured criterion: {reason}"
-    if chosen_criterion is bound_pick and budget_pick is not None and budget_pick.epoch is None:
-        reason = f"{reason} The target cannot be met: {budget_pick.reason}"
-    if not bound_applies and chosen_criterion.name != "bound_risk":
-        reason = f"No stability bound applies ({bound_reason}); measured criterion: {reason}"
-    return StopAdvice(chosen_criterion.epoch, chosen_criterion.name, reason, tuple(rows),
-                      tuple(criteria), budget, bound_applies, bound_reason, certified, len(rows))
+        return Criterion(name, None, None,
+                         "Unavailable: no shadow has a finite divergence at every epoch.")
+    turn = _acceleration(ordered, table, consecutive, relative_noise, noise_sigmas)
+    if turn is not None:
+        value = _finite(table[[r.epoch for r in rows].index(turn)].mean())
+        return Criterion(name, turn, value,
+                         f"After epoch {turn} the mean divergence's growth per step rose "
+                         f"{consecutive} epoch(s) running beyond noise: the shadows are "
+                         "separating faster than linearly.")
+    if len(rows) < consecutive + 1:
+        return Criterion(name, None, None, f"Too few epochs: the rule needs {consecutive + 1}, "
+                         f"{len(rows)} recorded.")
+    return Criterion(name, None, None, "The divergence has not grown faster than linearly so far.")
 
 
 def _choose(bound_pick: Criterion, budget_pick: Criterion | None, measured_pick: Criterion,
             growth_pick: Criterion) -> Criterion | None:
+    """The bound's epoch (or the budget's when earlier); without either, the measured ones."""
     if bound_pick.epoch is not None:
         if budget_pick is not None and budget_pick.epoch is not None \
                 and budget_pick.epoch < bound_pick.epoch:
