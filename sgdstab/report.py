@@ -340,9 +340,11 @@ def _run_section(run: Mapping[str, Any]) -> str:
 
 def _epoch_table(advice: StopAdvice) -> str:
     return _table(
-        ["epoch", "steps", "train", "holdout", "expected bound", "train + bound", "gap estimate",
-         "stderr", "train + gap", "mean divergence", "divergence per step", "within target"],
+        ["epoch", "steps", "train", "holdout", "expected bound", "train + bound", "vacuous",
+         "high-probability gap bound", "gap estimate", "stderr", "train + gap",
+         "mean divergence", "divergence per step", "within target"],
         [(r.epoch, r.steps, r.train_loss, r.holdout_loss, r.expected_bound, r.bound_risk,
+          r.bound_vacuous if r.bound_risk is not None else None, r.high_probability_gap,
           r.gap_estimate, r.gap_stderr, r.measured_risk, r.mean_divergence, r.divergence_rate,
           r.within_target) for r in advice.rows])
 
