@@ -85,7 +85,7 @@ class CrackSpotter(nn.Module):
 def main(out_dir: str | Path = "runs/small_cnn_estimated", quick: bool = False
          ) -> dict[str, Any]:
     """Train with a tracker, print the advice and write the report; return what was made."""
-    epochs, size = (3, 300) if quick else (8, 600)
+    epochs, size = (3, 200) if quick else (8, 600)
     torch.manual_seed(0)
     train_set, held_out = tile_patches(size, seed=1), tile_patches(size // 2, seed=2)
     model = CrackSpotter()
