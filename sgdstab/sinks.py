@@ -66,7 +66,7 @@ def dashboard_layout(shadows: int) -> dict[str, dict[str, list[Any]]]:
                                "bound/expected_stability$", "bound/uniform_stability$"]],
         },
         "sgdstab generalization": {
-            "replace-one gap estimate (+/- stderr) vs measured holdout-train gap":
+            "replace-one gap estimate (+/- standard error)":
                 ["Margin", ["gap/replace_one_estimate", "gap/replace_one_lower",
                             "gap/replace_one_upper"]],  # margin series take exact tag names
             "gap estimate and measured gap":

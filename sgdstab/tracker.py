@@ -95,6 +95,8 @@ class StabilityTracker:
         probe_size: int = 256,
         engine: str = "auto",
         loss_bound: float | None = None,
+        estimate_every: int = 1,
+        estimate_options: dict[str, Any] | None = None,
     ) -> None:
         if not isinstance(model, nn.Module):
             raise TypeError("model must be a torch.nn.Module")
@@ -135,6 +137,11 @@ class StabilityTracker:
         if loss_bound is not None and self.declared_constants is not None:
             raise ValueError("give loss_bound inside Constants(...) when constants are declared")
         self.loss_bound = None if loss_bound is None else float(loss_bound)
+        if isinstance(estimate_every, bool) or not isinstance(estimate_every, int) or \
+                estimate_every < 1:
+            raise ValueError(f"estimate_every must be a whole number >= 1, got {estimate_every!r}")
+        self.estimate_every = estimate_every
+        self.estimate_options = dict(estimate_options or {})
         self._estimated: Constants | None = None
         self.optimizer_reason = _optimizer_reason(optimizer)
         self._rng = np.random.default_rng(self.seed)
@@ -448,11 +455,21 @@ class StabilityTracker:
             self.sinks.write(reading)
         return reading
 
-    def advise(self, target: float | None = None) -> Any:
-        """Stop suggestions from the readings so far (``sgdstab.advice.StopAdvice``)."""
-        from .advice import advise
+    def advise(self, target: float | None = None, **options: Any) -> Any:
+        """Stop suggestions from the readings so far (``sgdstab.advice.StopAdvice``).
 
-        advice = advise(self.readings, target=target)
+        With a constant step size and batch size the budget projection uses the planner (a
+        ``TrainingPlan`` built from the run); otherwise it extrapolates the recorded bound.
+        ``options`` go to ``sgdstab.advice.advise``.
+        """
+        from .advice import TrainingPlan, advise
+
+        if "plan" not in options and self.history.steps:
+            step_sizes, batch_sizes = self.history.step_sizes(), self.history.batch_sizes()
+            if np.all(step_sizes == step_sizes[0]) and np.all(batch_sizes == batch_sizes[0]):
+                options["plan"] = TrainingPlan(n=self.n, step_size=float(step_sizes[0]),
+                                               batch_size=int(batch_sizes[0]))
+        advice = advise(self.readings, target=target, **options)
         if self.sinks is not None:
             self.sinks.write_advice(advice)
         return advice
@@ -478,19 +495,27 @@ class StabilityTracker:
         return audit
 
     def current_constants(self) -> Constants | None:
-        """The constants the bounds use now (declared, or running-maximum estimates)."""
-        if self.estimate_constants:
+        """The constants the bounds use now (declared, or running-maximum estimates).
+
+        Estimates are refreshed at the end of every ``estimate_every``-th epoch (and the first),
+        on a seeded sample of training examples, with ``estimate_options`` passed to
+        ``Constants.estimate`` (e.g. ``iterations``, ``per_example``).
+        """
+        if not self.estimate_constants:
+            return self.declared_constants
+        due = self._estimated is None or (self.epoch - 1) % self.estimate_every == 0
+        if due:
             from .constants import Constants as _Constants
-            train_rows = [self._fetch(self.train_set, j) for j in
-                          np.random.default_rng(self.seed + 2).choice(
-                              self.n, size=min(self.probe_size, self.n), replace=False)]
-            batch = self._collate(train_rows)
+
+            chosen = np.random.default_rng(self.seed + 2).choice(
+                self.n, size=min(self.probe_size, self.n), replace=False)
+            batch = self._collate([self._fetch(self.train_set, j) for j in chosen])
             fresh = _Constants.estimate(self.model, batch, loss_fn=self.loss_fn,
-                                        step_loss=self.step_loss, loss_bound=self.loss_bound)
+                                        step_loss=self.step_loss, loss_bound=self.loss_bound,
+                                        **self.estimate_options)
             self._estimated = fresh if self._estimated is None else \
                 self._estimated.merged_max(fresh)
-            return self._estimated
-        return self.declared_constants
+        return self._estimated
 
     def _bounds(self, divergence: list[float], notes: list[str]) -> dict[str, Any]:
         constants = self.current_constants()

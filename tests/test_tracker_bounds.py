@@ -69,3 +69,19 @@ def test_no_constants_means_no_bounds_with_a_note():
     readings, _ = _readings(None, epochs=1)
     assert readings[0].expected_bound is None and readings[0].path_bound == ()
     assert any("no constants" in note for note in readings[0].notes)
+
+
+def test_estimate_every_refreshes_the_estimates_only_on_due_epochs():
+    readings, _ = _readings("estimate", loss_bound=5.0, estimate_every=2,
+                            estimate_options={"iterations": 30, "per_example": 2})
+    assert readings[1].constants == readings[0].constants     # epoch 2: not due, reused
+    assert readings[2].constants["lipschitz"] >= readings[0].constants["lipschitz"]
+
+
+def test_advise_uses_the_planner_for_a_constant_schedule():
+    constants = Constants(lipschitz=1.0, smoothness=1.0, convex=True)
+    readings, tracker = _readings(constants, epochs=3)
+    target = readings[1].expected_bound * 2
+    advice = tracker.advise(target=target)
+    assert advice.budget is not None and advice.budget.method == "planner"
+    assert advice.suggested_epoch is not None
