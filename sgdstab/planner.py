@@ -1,0 +1,543 @@
+"""Planned SGD runs: step-size schedules, the bound after T planned steps, and its inversions.
+
+planned_bounds evaluates the bounds of sgdstab.bounds and sgdstab.divergence on a schedule fixed in
+advance; max_steps, max_step_size and min_train_size invert them (closed form where one exists,
+integer bisection or scipy root finding otherwise). numpy, scipy and the standard library only; no
+torch. Sources and assumptions travel with each Bound and PlanAnswer.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import optimize, special
+
+from .bounds import (
+    _PLAIN_SGD,
+    FROM_MEMORY,
+    HRS,
+    Bound,
+    _batch_sizes,
+    _convex_value,
+    _delta,
+    _fails,
+    _first_excess,
+    _holds,
+    _non_negative,
+    _optional_positive,
+    _positive,
+    _regime,
+    _regime_assumptions,
+    _step_sizes,
+    _steps,
+    _strongly_convex_value,
+    _train_size,
+    check_regime,
+    high_probability_gap,
+)
+from .divergence import _SAMPLING, _trajectory, nonconvex_schedule_bound
+
+TARGET_BOUNDS = ("stability", "high_probability")
+SCHEDULE_KINDS = ("constant", "step-decay", "cosine", "c-over-t")
+
+
+@dataclass(frozen=True)
+class Schedule:
+    """Step sizes alpha_t for steps t = 1, 2, ...; every kind is non-increasing, largest at t = 1.
+
+    constant: base; step-decay: base * decay_factor ** ((t - 1) // decay_every);
+    cosine: base * (1 + cos(pi (t - 1) / total_steps)) / 2 for t <= total_steps; c-over-t: base / t.
+    """
+
+    kind: str = "constant"
+    base_step_size: float = 0.1
+    decay_factor: float = 0.1
+    decay_every: int = 1
+    total_steps: int | None = None
+
+    def __post_init__(self) -> None:
+        if self.kind not in SCHEDULE_KINDS:
+            raise ValueError(f"schedule kind must be one of {SCHEDULE_KINDS}, got {self.kind!r}")
+        _positive("base_step_size", self.base_step_size)
+        if not 0 < float(self.decay_factor) <= 1:
+            raise ValueError(f"decay_factor must lie in (0, 1], got {self.decay_factor!r}")
+        if _steps(self.decay_every) < 1:
+            raise ValueError("decay_every must be >= 1 step")
+        if self.kind == "cosine" and (self.total_steps is None or _steps(self.total_steps) < 1):
+            raise ValueError("a cosine schedule needs total_steps >= 1")
+
+    @property
+    def peak(self) -> float:
+        return float(self.base_step_size)
+
+    @property
+    def horizon(self) -> int | None:
+        """Last step the schedule defines (None: unlimited)."""
+        return int(self.total_steps) if self.kind == "cosine" else None
+
+    def with_peak(self, peak: float) -> Schedule:
+        return dataclasses.replace(self, base_step_size=float(peak))
+
+    def step_sizes(self, steps: int) -> np.ndarray:
+        steps = _steps(steps)
+        if self.horizon is not None and steps > self.horizon:
+            raise ValueError(
+                f"the cosine schedule stops at {self.horizon} steps, asked for {steps}"
+            )
+        t = np.arange(1, steps + 1)
+        base = self.peak
+        if self.kind == "constant":
+            return np.full(steps, base)
+        if self.kind == "step-decay":
+            return base * float(self.decay_factor) ** ((t - 1) // int(self.decay_every))
+        if self.kind == "cosine":
+            return base * (1 + np.cos(np.pi * (t - 1) / int(self.total_steps))) / 2
+        return base / t
+
+    def total_step_size(self, steps: int) -> float:
+        """sum_{t <= steps} alpha_t (closed form except for cosine)."""
+        steps, base = _steps(steps), self.peak
+        if self.kind == "constant":
+            return steps * base
+        if self.kind == "c-over-t":  # base * H_T, H_T = digamma(T + 1) + Euler's gamma
+            return base * float(special.digamma(steps + 1) + np.euler_gamma) if steps else 0.0
+        if self.kind == "step-decay" and self.decay_factor < 1:
+            blocks, rest = divmod(steps, int(self.decay_every))
+            log_f = math.log(self.decay_factor)
+            full = -math.expm1(blocks * log_f) / -math.expm1(log_f)  # sum_{k<blocks} f^k
+            return base * (int(self.decay_every) * full + rest * math.exp(blocks * log_f))
+        if self.kind == "step-decay":
+            return steps * base
+        return float(self.step_sizes(steps).sum())
+
+    def describe(self) -> str:
+        if self.kind == "constant":
+            return f"constant step size {self.peak:.6g}"
+        if self.kind == "c-over-t":
+            return f"step size c/t with c = {self.peak:.6g}"
+        if self.kind == "cosine":
+            return f"cosine from {self.peak:.6g} over {self.total_steps} steps"
+        factor, every = f"{self.decay_factor:.6g}", self.decay_every
+        return f"step size {self.peak:.6g} times {factor} every {every} steps"
+
+
+@dataclass(frozen=True, eq=False)
+class _Recorded:
+    """A given array of per-step sizes used as a schedule (a private copy)."""
+
+    values: np.ndarray
+    kind = "recorded"
+
+    @property
+    def peak(self) -> float:
+        return float(self.values.max())
+
+    @property
+    def horizon(self) -> int:
+        return int(self.values.size)
+
+    def with_peak(self, peak: float) -> _Recorded:
+        return _Recorded(self.values * (float(peak) / self.peak))
+
+    def step_sizes(self, steps: int) -> np.ndarray:
+        steps = _steps(steps)
+        if steps > self.horizon:
+            raise ValueError(f"the given schedule has {self.horizon} steps, asked for {steps}")
+        return self.values[:steps]
+
+    def total_step_size(self, steps: int) -> float:
+        return float(self.step_sizes(steps).sum())
+
+    def describe(self) -> str:
+        return f"{self.horizon} given step sizes (largest {self.peak:.6g})"
+
+
+def _as_schedule(schedule: Schedule | float | Sequence[float]) -> Schedule | _Recorded:
+    if isinstance(schedule, (Schedule, _Recorded)):
+        return schedule
+    if np.ndim(schedule) == 0:
+        return Schedule("constant", _positive("step size", schedule))
+    values = _step_sizes(schedule).copy()
+    if values.size == 0 or values.max() <= 0:
+        raise ValueError("a given schedule needs at least one step size > 0")
+    values.flags.writeable = False
+    return _Recorded(values)
+
+
+def _mean_gap_note() -> str:
+    return (
+        "eps_stab (in expectation over the sampling) used as beta_n: the statement holds for the "
+        "gap averaged over the sampling, E_A[R - R_S]"
+    )
+
+
+def planned_bounds(
+    horizons: Sequence[int],
+    *,
+    regime: str,
+    n: float,
+    lipschitz: float,
+    schedule: Schedule | float | Sequence[float],
+    smoothness: float | None = None,
+    strong_convexity: float = 0.0,
+    batch_size: int = 1,
+    loss_bound: float | None = None,
+    delta: float = 0.05,
+    bound: str = "stability",
+) -> tuple[Bound, ...]:
+    """The bound after T planned steps, for each T in horizons (constant batch size).
+
+    convex: (2 L^2 / n) sum_{t<=T} alpha_t; strongly convex: L * expected_divergence with
+    eta_t = 1 - alpha_t gamma (for a constant step size the finite-T sum of strongly_convex_bound);
+    nonconvex: nonconvex_schedule_bound. bound='high_probability' passes that eps_stab through
+    high_probability_gap. Sources and assumptions: those functions' (HRS 2016 from memory;
+    McDiarmid).
+    """
+    regime, n = _regime(regime), _train_size(n)
+    lipschitz = _positive("lipschitz", lipschitz)
+    beta = _optional_positive("smoothness", smoothness)
+    gamma = _non_negative("strong_convexity", strong_convexity)
+    batch = int(_batch_sizes(batch_size, 1)[0])
+    loss_bound = _optional_positive("loss_bound", loss_bound)
+    if bound not in TARGET_BOUNDS:
+        raise ValueError(f"bound must be one of {TARGET_BOUNDS}, got {bound!r}")
+    if bound == "high_probability":
+        delta = _delta(delta)
+    horizons = [_steps(h) for h in horizons]
+    sched = _as_schedule(schedule)
+    last = max(horizons, default=0)
+    if sched.horizon is not None and last > sched.horizon:
+        raise ValueError(f"{sched.describe()} defines {sched.horizon} steps, asked for {last}")
+
+    # Every Schedule kind is largest at step 1, so its condition is checked there.
+    probe = (
+        sched.step_sizes(last)
+        if isinstance(sched, _Recorded)
+        else np.full(min(last, 1), sched.peak)
+    )
+    assumptions = _regime_assumptions(regime, lipschitz, beta, gamma) + (_PLAIN_SGD,)
+    if regime == "nonconvex" or beta is not None:
+        reason = check_regime(regime, probe, beta, gamma)
+    elif regime == "strongly_convex" and gamma == 0:
+        reason = "strong convexity (gamma) must be declared > 0 in this regime"
+    else:
+        assumptions += ("step-size condition not checked: smoothness not declared",)
+        reason = "" if regime == "convex" else _first_excess(probe, 1 / gamma, "1/gamma")
+    if regime == "convex":
+        source = f"{HRS}, convex case {FROM_MEMORY}"
+    elif regime == "strongly_convex":
+        source = f"{HRS}, expected growth recursion, eta = 1 - alpha*gamma {FROM_MEMORY}"
+    else:
+        source = f"{HRS}, t0 lemma with the expected growth recursion {FROM_MEMORY}"
+    if not reason and regime == "nonconvex" and loss_bound is None:
+        reason = "loss bound (M) not declared: the t0 argument needs sup f <= M"
+    if reason:
+        return tuple(_fails(reason, source, assumptions) for _ in horizons)
+
+    if regime == "convex":
+        stability = [
+            _holds(_convex_value(sched.total_step_size(t), n, lipschitz), source, assumptions)
+            for t in horizons
+        ]
+    elif regime == "strongly_convex" and sched.kind == "constant":
+        stability = [
+            _holds(_strongly_convex_value(sched.peak, t, n, lipschitz, gamma), source, assumptions)
+            for t in horizons
+        ]
+    elif regime == "strongly_convex":
+        a = sched.step_sizes(last)
+        curve = lipschitz * _trajectory(1.0 - a * gamma, 2.0 * a * lipschitz / n)
+        stability = [_holds(curve[t], source, assumptions + (_SAMPLING,)) for t in horizons]
+    else:
+        stability = [
+            nonconvex_schedule_bound(sched.step_sizes(t), batch, n, lipschitz, beta, loss_bound)
+            for t in horizons
+        ]
+    if bound == "stability":
+        return tuple(stability)
+    out = []
+    for eps in stability:
+        high = high_probability_gap(eps.value, n, loss_bound, delta)
+        extra = (eps.source, *eps.assumptions, _mean_gap_note())
+        out.append(dataclasses.replace(high, assumptions=high.assumptions + extra, t0=eps.t0))
+    return tuple(out)
+
+
+def planned_bound(steps: int, **problem) -> Bound:
+    """planned_bounds for one horizon: the bound after `steps` planned steps."""
+    return planned_bounds([steps], **problem)[0]
+
+
+@dataclass(frozen=True)
+class PlanAnswer:
+    """The planner's answer: most steps / largest step size, or fewest examples, within target."""
+
+    value: float | None  # int for steps and train_size; None when no answer exists or unbounded
+    applicable: bool  # False when the bound's assumptions fail for these inputs
+    reason: str  # why not applicable, or why there is no answer ('' otherwise)
+    quantity: str  # "steps", "step_size" or "train_size"
+    target: float
+    bound: str = "stability"  # which bound the target applies to (TARGET_BOUNDS)
+    bound_at_value: float | None = None
+    unbounded: bool = False  # every value of the quantity meets the target
+    note: str = ""  # qualifiers: capped by a step-size condition, search limit reached, ...
+    source: str = ""
+
+    def to_dict(self) -> dict:
+        return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+
+
+def _last_true(ok: Callable[[int], bool], lo: int, hi: int, guess: int | None = None) -> int:
+    """Largest x in [lo, hi] with ok(x), for ok monotone (True, then False) and ok(lo) True.
+
+    Gallops away from the guess (a closed form is usually off by at most one), then bisects.
+    """
+    good, bad = lo, hi + 1  # ok(good) holds; ok fails at bad (hi + 1 stands for "beyond hi")
+    downward = False
+    if guess is not None and lo < guess <= hi:
+        good, bad, downward = (guess, bad, False) if ok(guess) else (good, guess, True)
+    span = 1
+    while bad - good > 1:
+        probe = max(good + 1, bad - span) if downward else min(good + span, bad - 1)
+        if ok(probe) == downward:  # the gallop crossed the boundary: bisect from here
+            good, bad = (probe, bad) if downward else (good, probe)
+            break
+        good, bad = (good, probe) if downward else (probe, bad)
+        span *= 2
+    while bad - good > 1:
+        mid = (good + bad) // 2
+        good, bad = (mid, bad) if ok(mid) else (good, mid)
+    return good
+
+
+def _stability_target(target: float, bound: str, n: float, loss_bound, delta) -> float:
+    """The eps_stab whose high-probability gap equals target (inverse of high_probability_gap)."""
+    if bound == "stability":
+        return target
+    s = math.sqrt(math.log(1 / delta) / (2 * n))
+    return (target - loss_bound * s) / (1 + 2 * n * s)
+
+
+def max_steps(
+    target: float,
+    *,
+    regime: str,
+    n: float,
+    lipschitz: float,
+    schedule: Schedule | float | Sequence[float],
+    smoothness: float | None = None,
+    strong_convexity: float = 0.0,
+    batch_size: int = 1,
+    loss_bound: float | None = None,
+    delta: float = 0.05,
+    bound: str = "stability",
+    max_horizon: int = 10**7,
+) -> PlanAnswer:
+    """Largest T with planned_bound(T) <= target.
+
+    Exact for a constant step size (convex: T = target n / (2 L^2 alpha); strongly convex:
+    T = ln(1 - target gamma n / (2 L^2)) / ln(1 - alpha gamma)), integer bisection otherwise;
+    'unbounded' when the bound's limit in T is within target. Sources: planned_bounds'.
+    max_horizon limits the search where each evaluation needs per-step arrays.
+    """
+    target = _positive("target", target)
+    sched = _as_schedule(schedule)
+    problem = dict(
+        regime=regime, n=n, lipschitz=lipschitz, schedule=sched, smoothness=smoothness,
+        strong_convexity=strong_convexity, batch_size=batch_size, loss_bound=loss_bound,
+        delta=delta, bound=bound,
+    )  # fmt: skip
+    at = functools.lru_cache(maxsize=None)(lambda t: planned_bound(t, **problem))
+    first = at(1)  # every schedule defines step 1; its conditions are checked there
+    plan = _plan_answer("steps", target, bound, first.source)
+    if not first.applicable:
+        return plan(None, False, first.reason)
+    if at(0).value > target:
+        return plan(None, True, f"even 0 steps give a {bound} bound of {at(0).value:.6g} > target")
+    constant = sched.kind == "constant"
+    n_value, lipschitz_value = float(n), float(lipschitz)
+    eps = _stability_target(target, bound, n_value, loss_bound, delta)
+    guess, limit = None, None
+    if regime == "convex" and constant:
+        guess = math.floor(eps * n_value / (2 * lipschitz_value**2 * sched.peak))
+    elif regime == "convex" and sched.kind == "step-decay" and sched.decay_factor < 1:
+        total = sched.peak * sched.decay_every / (1 - sched.decay_factor)
+        limit = _convex_value(total, n_value, lipschitz_value)
+    elif regime == "strongly_convex" and constant:
+        limit = 2 * lipschitz_value**2 / (float(strong_convexity) * n_value)
+        rate = sched.peak * float(strong_convexity)
+        if eps < limit:
+            guess = 0 if rate >= 1 else math.floor(math.log1p(-eps / limit) / math.log1p(-rate))
+    if limit is not None and limit <= eps and sched.horizon is None:
+        value = _limit_value(limit, problem)
+        note = f"the {bound} bound stays below its limit {value:.6g} <= target: any number of steps"
+        return plan(None, True, "", unbounded=True, note=note)
+    cheap = regime == "convex" or (regime == "strongly_convex" and constant)
+    hi = sched.horizon if sched.horizon is not None else (10**15 if cheap else _steps(max_horizon))
+
+    def ok(t: int) -> bool:
+        b = at(t)
+        return b.applicable and b.value <= target
+
+    best = _last_true(ok, 0, hi, None if guess is None else max(0, min(guess, hi)))
+    note = ""
+    if best == hi:
+        note = (
+            f"the whole schedule ({hi} steps) stays within target"
+            if sched.horizon is not None
+            else f"the bound stays within target up to the search limit of {hi} steps"
+        )
+    elif not at(best + 1).applicable:
+        note = f"step {best + 1} breaks the bound's condition: {at(best + 1).reason}"
+    return plan(best, True, "", bound_at_value=at(best).value, note=note)
+
+
+def _limit_value(stability_limit: float, problem: dict) -> float:
+    if problem["bound"] == "stability":
+        return stability_limit
+    return high_probability_gap(
+        stability_limit, problem["n"], problem["loss_bound"], problem["delta"]
+    ).value
+
+
+def _plan_answer(quantity: str, target: float, bound: str, source: str):
+    def make(value, applicable, reason, **extra) -> PlanAnswer:
+        return PlanAnswer(
+            value, applicable, reason, quantity, target, bound, source=source, **extra
+        )
+
+    return make
+
+
+def _step_size_cap(regime: str, smoothness: float | None, gamma: float) -> tuple[float | None, str]:
+    """The largest peak step size the regime's conditions allow (None: no limit)."""
+    if regime == "convex":
+        return (None, "") if smoothness is None else (2 / float(smoothness), "2/beta")
+    if regime == "strongly_convex" and gamma > 0:
+        if smoothness is None:
+            return 1 / gamma, "1/gamma"
+        return 2 / (float(smoothness) + gamma), "2/(beta+gamma)"
+    return None, ""
+
+
+def max_step_size(
+    target: float,
+    *,
+    regime: str,
+    n: float,
+    lipschitz: float,
+    steps: int,
+    schedule: Schedule | float | Sequence[float] | None = None,
+    smoothness: float | None = None,
+    strong_convexity: float = 0.0,
+    batch_size: int = 1,
+    loss_bound: float | None = None,
+    delta: float = 0.05,
+    bound: str = "stability",
+) -> PlanAnswer:
+    """Largest peak step size alpha_1 with planned_bound(steps) <= target, schedule shape kept.
+
+    Exact for the convex bound (alpha_1 = target n / (2 L^2 sum_t alpha_t / alpha_1)), root finding
+    (scipy.optimize.brentq) otherwise; capped by the regime's step-size condition. A given array of
+    step sizes is rescaled so that its largest entry is the answer. Sources: planned_bounds'.
+    """
+    target, steps = _positive("target", target), _steps(steps)
+    shape = _as_schedule(1.0 if schedule is None else schedule)
+    gamma = _non_negative("strong_convexity", strong_convexity)
+    problem = dict(
+        regime=_regime(regime), n=n, lipschitz=lipschitz, smoothness=smoothness,
+        strong_convexity=gamma, batch_size=batch_size, loss_bound=loss_bound, delta=delta,
+        bound=bound,
+    )  # fmt: skip
+    at = functools.lru_cache(maxsize=None)(
+        lambda peak: planned_bound(steps, schedule=shape.with_peak(peak), **problem)
+    )
+    floor = at(shape.peak * 1e-300)  # the bound as the step sizes vanish
+    plan = _plan_answer("step_size", target, bound, floor.source)
+    if not floor.applicable:
+        return plan(None, False, floor.reason)
+    if floor.value > target:
+        return plan(None, True, f"even vanishing step sizes give {floor.value:.6g} > target")
+    cap, label = _step_size_cap(regime, smoothness, gamma)
+    if cap is not None:
+        if at(cap).value <= target:
+            note = f"capped by the condition peak step size <= {label} = {cap:.6g}"
+            return plan(cap, True, "", bound_at_value=at(cap).value, note=note)
+        hi = cap
+    else:  # nonconvex: the t0 = T branch, M min(1, T b / n), does not grow with the step size
+        saturated = float(loss_bound) * min(1.0, steps * int(batch_size) / float(n))
+        if _limit_value(saturated, problem) <= target:
+            note = "the bound saturates at M min(1, T b / n) within target: any step size"
+            return plan(None, True, "", unbounded=True, note=note)
+        hi = shape.peak
+        while at(hi).value <= target:
+            hi *= 2
+    guess = None
+    if regime == "convex" and bound == "stability":
+        unit = _convex_value(
+            shape.with_peak(1.0).total_step_size(steps), float(n), float(lipschitz)
+        )
+        guess = min(target / unit, hi)
+    if guess is None or at(guess).value > target:
+        guess = optimize.brentq(lambda x: at(x).value - target, hi * 1e-300, hi, rtol=1e-14)
+    for _ in range(60):  # make sure the answer meets the target despite round-off
+        if at(guess).value <= target:
+            break
+        guess = guess * (1 - 2**-40)
+    return plan(guess, True, "", bound_at_value=at(guess).value)
+
+
+def min_train_size(
+    target: float,
+    *,
+    regime: str,
+    lipschitz: float,
+    steps: int,
+    schedule: Schedule | float | Sequence[float],
+    smoothness: float | None = None,
+    strong_convexity: float = 0.0,
+    batch_size: int = 1,
+    loss_bound: float | None = None,
+    delta: float = 0.05,
+    bound: str = "stability",
+    max_train_size: int = 10**15,
+) -> PlanAnswer:
+    """Smallest n >= 2 with planned_bound(steps) <= target for a fixed number of steps.
+
+    Exact where the bound is C / n (convex, strongly convex: n = ceil(C / target)), root finding
+    (scipy.optimize.brentq) on n otherwise, then the integer boundary. Sources: planned_bounds'.
+    """
+    target, steps = _positive("target", target), _steps(steps)
+    problem = dict(
+        regime=_regime(regime), lipschitz=lipschitz, schedule=_as_schedule(schedule),
+        smoothness=smoothness, strong_convexity=strong_convexity, batch_size=batch_size,
+        loss_bound=loss_bound, delta=delta, bound=bound,
+    )  # fmt: skip
+    at = functools.lru_cache(maxsize=None)(lambda size: planned_bound(steps, n=size, **problem))
+    plan = _plan_answer("train_size", target, bound, at(2).source)
+    if not at(2).applicable:
+        return plan(None, False, at(2).reason)
+
+    def too_big(size: int) -> bool:
+        return at(size).value > target
+
+    if not too_big(2):
+        return plan(2, True, "", bound_at_value=at(2).value, note="n = 2 is the smallest size")
+    hi = _steps(max_train_size)
+    if too_big(hi):
+        return plan(None, True, f"even n = {hi} gives {at(hi).value:.6g} > target")
+    if regime != "nonconvex" and bound == "stability":
+        guess = math.ceil(2 * at(2).value / target)
+    else:
+        upper = 4
+        while too_big(upper):
+            upper *= 4
+        root = optimize.brentq(lambda x: at(x).value - target, max(2, upper / 4), upper, rtol=1e-14)
+        guess = math.ceil(root)
+    best = _last_true(too_big, 2, hi, max(2, min(guess - 1, hi))) + 1
+    return plan(best, True, "", bound_at_value=at(best).value)
