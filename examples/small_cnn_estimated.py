@@ -95,7 +95,8 @@ def main(out_dir: str | Path = "runs/small_cnn_estimated", quick: bool = False
     loss = squared_probability_loss
     tracker = StabilityTracker(model, optimizer, train_set=train_set, loss_fn=loss, shadows=3,
                                replacements=held_out, log_dir=out_dir, constants="estimate",
-                               loss_bound=2.0, seed=0, probe_size=64)
+                               loss_bound=2.0, seed=0, probe_size=64,
+                               estimate_options={"iterations": 40, "per_example": 2})
     with tracker:
         for _ in range(epochs):
             model.train()
