@@ -16,6 +16,7 @@ _WHERE = {
     "LockstepWarning": "tracker",
     "ShadowFaultWarning": "tracker",
     "DataParallelStabilityTracker": "distributed",
+    "EngineFallbackWarning": "engines",
     "Constants": "constants",
     "estimate_lipschitz": "constants",
     "estimate_smoothness": "constants",

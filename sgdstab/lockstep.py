@@ -207,6 +207,17 @@ class Shadow:
         return self.forked and self.fault is None
 
 
+def parameters_finite(params: list[torch.Tensor]) -> bool:
+    """Whether every parameter is finite, in one fused norm call (a norm that overflows, i.e.
+    entries beyond ~1e19 in float32, counts as non-finite: such a run has diverged anyway)."""
+    with torch.no_grad():
+        try:
+            norms = torch._foreach_norm(params)
+        except (AttributeError, RuntimeError):   # pragma: no cover - older or exotic builds
+            return all(bool(torch.isfinite(p).all()) for p in params)
+        return bool(torch.isfinite(torch.stack(norms)).all())
+
+
 def trainable_parameters(model: nn.Module) -> list[tuple[str, nn.Parameter]]:
     return [(name, p) for name, p in model.named_parameters() if p.requires_grad]
 
@@ -343,9 +354,7 @@ class PerShadowEngine:
                     self.before_step(shadow.model)
                 self._sync_hyperparameters(shadow)
                 shadow.optimizer.step()
-                with torch.no_grad():
-                    finite = all(bool(torch.isfinite(p).all())
-                                 for p in shadow.model.parameters())
+                finite = parameters_finite(list(shadow.model.parameters()))
             if not finite:
                 shadow.fault = f"non-finite loss or parameters at step {step}"
                 faulted.append(shadow)

@@ -123,17 +123,22 @@ def _mean(values: np.ndarray) -> float | None:
 
 def summarise_probe(main: np.ndarray, shadows: Sequence[np.ndarray], probe: ProbeRows,
                     fresh_replacements: bool, fresh_reason: str,
-                    difference_kinds: Sequence[str]) -> ProbeSummary:
+                    difference_kinds: Sequence[str],
+                    reference: np.ndarray | None = None) -> ProbeSummary:
     """Loss differences, gap estimate with standard error, and the main model's probe losses.
+
+    ``reference``: the losses the shadows are compared with when they are not the main model's
+    (the batched engine's no-swap reference run, which shares the shadows' rounding).
 
     Gap estimate: for shadow k swapping z_i for z', the sample
     ``((f(w'_k; z_i) - f(w; z_i)) + (f(w; z') - f(w'_k; z'))) / 2``; mean over shadows, standard
     error ``std(ddof=1) / sqrt(K)``. Unbiased for the expected gap only when z' is a fresh draw.
     """
     notes: list[str] = []
+    base = main if reference is None else reference
     use = np.isin(probe.kinds, list(difference_kinds))
     if shadows:
-        differences = np.abs(np.stack([s[use] for s in shadows]) - main[use][None, :])
+        differences = np.abs(np.stack([s[use] for s in shadows]) - base[use][None, :])
         finite = differences[np.isfinite(differences)]
         difference_max = float(finite.max()) if finite.size else None
         difference_mean = float(finite.mean()) if finite.size else None
@@ -148,8 +153,8 @@ def summarise_probe(main: np.ndarray, shadows: Sequence[np.ndarray], probe: Prob
         for k, losses in enumerate(shadows):
             out_rows = (probe.kinds == "out") & (probe.owner == k)
             in_rows = (probe.kinds == "in") & (probe.owner == k)
-            sample = 0.5 * ((losses[out_rows] - main[out_rows]).mean()
-                            + (main[in_rows] - losses[in_rows]).mean())
+            sample = 0.5 * ((losses[out_rows] - base[out_rows]).mean()
+                            + (base[in_rows] - losses[in_rows]).mean())
             samples.append(sample)
         samples_array = np.asarray(samples)
         if not np.all(np.isfinite(samples_array)):

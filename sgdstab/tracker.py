@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import random
 import warnings
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
@@ -97,6 +98,7 @@ class StabilityTracker:
         loss_bound: float | None = None,
         estimate_every: int = 1,
         estimate_options: dict[str, Any] | None = None,
+        preserve_host_rng: bool | None = None,
     ) -> None:
         if not isinstance(model, nn.Module):
             raise TypeError("model must be a torch.nn.Module")
@@ -142,6 +144,8 @@ class StabilityTracker:
             raise ValueError(f"estimate_every must be a whole number >= 1, got {estimate_every!r}")
         self.estimate_every = estimate_every
         self.estimate_options = dict(estimate_options or {})
+        self.preserve_host_rng = preserve_host_rng
+        self._host_rng_used = False
         self._estimated: Constants | None = None
         self.optimizer_reason = _optimizer_reason(optimizer)
         self._rng = np.random.default_rng(self.seed)
@@ -308,11 +312,13 @@ class StabilityTracker:
             return
         active = [s for s in self.engine.shadows if s.active]
         after = torch.get_rng_state()
+        host = self._host_rng_states()
         try:
-            with preserved_rng():
-                faulted = self.engine.step(active, group, self.steps)
+            faulted = self.engine.step(active, group, self.steps)
         finally:
             torch.set_rng_state(after)
+            if host is not None:
+                self._restore_host_rng(host)
         for shadow in faulted:
             warnings.warn(f"{shadow.label} (swapping index {shadow.spec.index}) hit a non-finite "
                           f"loss or parameter at step {self.steps}; it is frozen and marked, the "
@@ -325,6 +331,36 @@ class StabilityTracker:
         hit_counts = [int(np.count_nonzero(drawn == s.spec.index)) for s in self.shadows]
         self.history.record(max(rates), len(drawn), drawn, hit_counts)
         self.steps += 1
+
+    def _host_rng_states(self) -> tuple[Any, Any] | None:
+        """Python's and NumPy's global RNG states, when they need guarding around the shadows.
+
+        Saving them costs ~70 us a step, so by default (``preserve_host_rng=None``) they are
+        guarded during the first epoch only, where the tracker also checks whether the shadows'
+        steps draw from them; if they do, guarding stays on for the rest of the run.
+        """
+        wanted = self.preserve_host_rng
+        if wanted is False:
+            return None
+        if wanted is None and not self._host_rng_used and self.epoch > 0:
+            return None
+        return random.getstate(), np.random.get_state()
+
+    def _restore_host_rng(self, states: tuple[Any, Any]) -> None:
+        python_state, numpy_state = states
+        if self.preserve_host_rng is None and not self._host_rng_used:
+            now = np.random.get_state()
+            changed = random.getstate() != python_state or now[2:] != numpy_state[2:] or \
+                not np.array_equal(now[1], numpy_state[1])
+            if changed:
+                self._host_rng_used = True
+                self._warn_once("host_rng", "the shadows' steps draw from Python's random or "
+                                "NumPy's global RNG; the tracker now restores both after every "
+                                "step so your run is unchanged, but it replays only torch's RNG "
+                                "for the shadows: draw augmentation randomness from torch",
+                                UserWarning)
+        random.setstate(python_state)
+        np.random.set_state(numpy_state)
 
     def _drawn_indices(self, group: StepGroup) -> np.ndarray:
         """Every training index the step used (a data-parallel tracker gathers all ranks')."""
@@ -422,6 +458,10 @@ class StabilityTracker:
         if self._probe is None:
             self._probe = self._build_probe()
         main_losses = model_losses(self.model, self._probe, self._per_example)
+        reference_module = getattr(self.engine, "reference_module", lambda: None)()
+        reference_losses = None if reference_module is None else \
+            model_losses(reference_module, self._probe, self._per_example)
+        base_losses = main_losses if reference_losses is None else reference_losses
         shadow_losses = []
         for shadow in self.shadows:
             if shadow.fault is not None:
@@ -430,11 +470,12 @@ class StabilityTracker:
                 shadow_losses.append(model_losses(self.engine.module_of(shadow), self._probe,
                                                   self._per_example))
             else:
-                shadow_losses.append(main_losses)
+                shadow_losses.append(base_losses)
         fresh, reason = self._fresh()
         kinds = ("out", "in", "probe") if self.probe_set is not None else \
             ("out", "in", "train", "holdout")
-        summary = summarise_probe(main_losses, shadow_losses, self._probe, fresh, reason, kinds)
+        summary = summarise_probe(main_losses, shadow_losses, self._probe, fresh, reason, kinds,
+                                  reference=reference_losses)
         notes += summary.notes
         audit_value = self._finish_audit(audit, notes)
         bound_fields = self._bounds(divergence, notes)

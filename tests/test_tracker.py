@@ -278,3 +278,36 @@ def test_gap_estimate_is_the_mean_of_per_shadow_replace_one_samples():
     samples = torch.stack(samples).double()
     assert reading.gap_estimate == pytest.approx(float(samples.mean()), rel=1e-5, abs=1e-8)
     assert reading.gap_stderr == pytest.approx(float(samples.std() / 3 ** 0.5), rel=1e-4)
+
+
+class NumpyNoise(nn.Module):
+    """A model whose forward draws from NumPy's global RNG (bad practice, but it happens)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.inner = mlp(dropout=0.0)
+
+    def forward(self, x):
+        import numpy as np
+        jitter = torch.from_numpy(np.random.normal(0, 0.01, size=x.shape).astype("float32"))
+        return self.inner(x + jitter)
+
+
+def test_host_rng_drawn_by_the_model_is_detected_and_the_run_stays_unchanged():
+    import numpy as np
+
+    def run(track):
+        np.random.seed(3)
+        data = pebbles()
+        torch.manual_seed(0)
+        model = NumpyNoise()
+        opt = torch.optim.SGD(model.parameters(), lr=0.1)
+        tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data,
+                                   shadows=1, audit=False) if track else None
+        train(model, opt, loader(data), epochs=2, tracker=tracker)
+        return flat(model), np.random.random()
+
+    plain = run(False)
+    with pytest.warns(UserWarning, match="NumPy's global RNG"):
+        tracked = run(True)
+    assert torch.equal(plain[0], tracked[0]) and plain[1] == tracked[1]
