@@ -182,6 +182,8 @@ class StepGroup:
     def all_indices(self) -> np.ndarray:
         if not self.indices:
             return np.zeros(0, dtype=np.int64)
+        if len(self.indices) == 1:
+            return self.indices[0]
         return np.concatenate(self.indices)
 
 
@@ -201,6 +203,30 @@ class Shadow:
         self.forked = False
         self.forked_at: int | None = None
         self.fault: str | None = None   # set when the shadow hit NaN/inf and was frozen
+        self.modes: list[bool] | None = None   # training flags last copied from the main model
+        self._cached_for: Any = None
+        self._modules: list[nn.Module] = []
+        self._params: list[nn.Parameter] = []
+
+    def _refresh(self) -> None:
+        model = self.model
+        if model is not self._cached_for:
+            self._cached_for = model
+            self._modules = list(model.modules()) if model is not None else []
+            self._params = list(model.parameters()) if model is not None else []
+            self.modes = None
+
+    @property
+    def modules(self) -> list[nn.Module]:
+        """The shadow model's modules (cached while the model object stays the same)."""
+        self._refresh()
+        return self._modules
+
+    @property
+    def params(self) -> list[nn.Parameter]:
+        """The shadow model's parameters (cached while the model object stays the same)."""
+        self._refresh()
+        return self._params
 
     @property
     def active(self) -> bool:
@@ -248,6 +274,7 @@ class PerShadowEngine:
                 raise LockstepError("the optimizer holds parameters that are not the model's: "
                                     "pass the optimizer built over model.parameters()") from None
         self.shadows: list[Shadow] = []
+        self._main_modules = list(main_model.modules())
 
     # -- construction ------------------------------------------------------------------------
     def _mirror_optimizer(self, model: nn.Module) -> torch.optim.Optimizer:
@@ -327,11 +354,13 @@ class PerShadowEngine:
         Returns the shadows that hit a non-finite loss or parameter at this step (now frozen).
         """
         faulted = []
-        modes = [module.training for module in self.main_model.modules()]
+        modes = [module.training for module in self._main_modules]
         for shadow in shadows:
-            for module, mode in zip(shadow.model.modules(), modes):
-                module.training = mode   # follow the user's train()/eval() choices per module
-            for p in shadow.model.parameters():
+            if shadow.modes != modes:   # follow the user's train()/eval() choices per module
+                for module, mode in zip(shadow.modules, modes):
+                    module.training = mode
+                shadow.modes = modes
+            for p in shadow.params:
                 p.grad = None
             finite = True
             with torch.enable_grad():
@@ -354,7 +383,7 @@ class PerShadowEngine:
                     self.before_step(shadow.model)
                 self._sync_hyperparameters(shadow)
                 shadow.optimizer.step()
-                finite = parameters_finite(list(shadow.model.parameters()))
+                finite = parameters_finite(shadow.params)
             if not finite:
                 shadow.fault = f"non-finite loss or parameters at step {step}"
                 faulted.append(shadow)
