@@ -37,7 +37,7 @@ from typing import Any
 
 import numpy as np
 
-from .reading import EpochReading
+from .reading import EpochReading, json_safe
 
 __all__ = [
     "AdviceRow",
@@ -152,7 +152,7 @@ class StopAdvice:
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-friendly dict (non-finite floats become None); ``from_dict`` inverts it."""
-        return _json_safe(asdict(self))
+        return json_safe(asdict(self))
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any]) -> StopAdvice:
@@ -200,14 +200,6 @@ def _build(cls: type, data: Mapping[str, Any]) -> Any:
     return cls(**{k: v for k, v in data.items() if k in names})
 
 
-def _json_safe(value: Any) -> Any:
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, Mapping):
-        return {str(k): _json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_safe(v) for v in value]
-    return value
 
 
 # ---------------------------------------------------------------------------------------------

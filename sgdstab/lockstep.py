@@ -383,6 +383,8 @@ class PerShadowEngine:
                     self.before_step(shadow.model)
                 self._sync_hyperparameters(shadow)
                 shadow.optimizer.step()
+                for p in shadow.params:   # shadows step one after another: free each one's
+                    p.grad = None         # gradients at once, so only one set is alive
                 finite = parameters_finite(shadow.params)
             if not finite:
                 shadow.fault = f"non-finite loss or parameters at step {step}"

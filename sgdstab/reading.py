@@ -10,7 +10,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-__all__ = ["EpochReading", "read_history"]
+__all__ = ["EpochReading", "read_history", "json_safe"]
 
 
 @dataclass(frozen=True)
@@ -43,7 +43,7 @@ class EpochReading:
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-friendly dict (non-finite floats become None)."""
-        return _json_safe(asdict(self))
+        return json_safe(asdict(self))
 
     def to_json(self) -> str:
         return json.dumps(self.to_dict(), sort_keys=True)
@@ -57,13 +57,14 @@ class EpochReading:
         return cls(**known)
 
 
-def _json_safe(value: Any) -> Any:
+def json_safe(value: Any) -> Any:
+    """A JSON-friendly copy: mappings with string keys, lists, non-finite floats as None."""
     if isinstance(value, float):
         return value if math.isfinite(value) else None
     if isinstance(value, Mapping):
-        return {str(k): _json_safe(v) for k, v in value.items()}
+        return {str(k): json_safe(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
-        return [_json_safe(v) for v in value]
+        return [json_safe(v) for v in value]
     return value
 
 
