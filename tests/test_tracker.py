@@ -48,17 +48,19 @@ def test_main_run_is_bit_identical_with_and_without_tracker(seed_loader, optimiz
     assert all(d > 0 for d in readings[-1].divergence)
 
 
-def test_null_swap_is_exactly_zero_with_dropout_and_momentum():
+@pytest.mark.parametrize("engine", ["per_shadow", "batched"])
+def test_null_swap_is_exactly_zero_with_dropout_and_momentum(engine):
     data = pebbles()
     model = mlp(dropout=0.3)
     opt = torch.optim.SGD(model.parameters(), lr=0.1, momentum=0.9)
     tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data,
-                               swap=[(7, data[7]), (30, data[30])])
+                               swap=[(7, data[7]), (30, data[30]), (41, data[41])], engine=engine)
+    assert tracker.engine.name == engine
     with warnings.catch_warnings():
         warnings.simplefilter("error", LockstepWarning)
         readings = train(model, opt, loader(data), epochs=2, tracker=tracker)
     for reading in readings:
-        assert reading.divergence == (0.0, 0.0)
+        assert reading.divergence == (0.0, 0.0, 0.0)
         assert reading.loss_difference_max == 0.0
     assert readings[0].audit_divergence == 0.0
     assert readings[1].audit_divergence is None  # the audit runs in the first epoch only
