@@ -66,7 +66,7 @@ def tracker_state(tracker: StabilityTracker) -> dict[str, Any]:
         "readings": [r.to_dict() for r in tracker.readings],
         "warned": sorted(tracker._warned),
         "assumption_violated": tracker._assumption_violated,
-        "host_rng_used": tracker._host_rng_used,
+        "host_rng_used": tracker.host_rng.used,
         "estimated_constants": None if estimated is None else estimated.to_dict(),
     }
 
@@ -119,7 +119,7 @@ def restore_tracker(tracker: StabilityTracker, state: Mapping[str, Any]) -> None
     tracker.readings = [EpochReading.from_dict(r) for r in state["readings"]]
     tracker._warned = set(state["warned"])
     tracker._assumption_violated = bool(state["assumption_violated"])
-    tracker._host_rng_used = bool(state.get("host_rng_used", False))
+    tracker.host_rng.used = bool(state.get("host_rng_used", False))
     estimated = state["estimated_constants"]
     tracker._estimated = None if estimated is None else Constants.from_dict(estimated)
     tracker._collate_rows_for = None   # rows are rebuilt from the specs at the next batches()

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import random
 import warnings
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
@@ -15,11 +14,19 @@ from torch import nn
 from torch.utils.data import DataLoader, Dataset
 from torch.utils.data._utils.collate import default_collate
 
+from .assessment import (
+    assumption_breaches,
+    effective_constants,
+    optimizer_reason,
+    reading_fields,
+    run_bounds,
+)
 from .constants import Constants
 from .engines import make_engine
 from .history import StepHistory
 from .loaders import check_train_set, recording_loader
 from .lockstep import (
+    HostRngGuard,
     LockstepError,
     NeighbourSpec,
     Shadow,
@@ -29,6 +36,7 @@ from .lockstep import (
     substitute_rows,
     trainable_parameters,
 )
+from .neighbours import explicit_neighbours, seeded_neighbours
 from .probe import PerExampleLoss, ProbeRows, model_losses, summarise_probe
 from .reading import EpochReading
 from .sinks import RunSinks
@@ -46,25 +54,6 @@ class AssumptionWarning(UserWarning):
 
 class ShadowFaultWarning(UserWarning):
     """A shadow hit a non-finite loss or parameter and was frozen."""
-
-
-_PLAIN_SGD_KEYS = ("momentum", "nesterov", "maximize")
-
-
-def _optimizer_reason(optimizer: torch.optim.Optimizer) -> str:
-    """Why the published bounds do not apply to this optimizer ('' when they do)."""
-    if type(optimizer) is not torch.optim.SGD:
-        return (f"optimizer is {type(optimizer).__name__}: the bounds are proved for plain SGD "
-                "(the tracker still measures)")
-    for group in optimizer.param_groups:
-        if group.get("momentum", 0):
-            return (f"SGD with momentum {group['momentum']}: the bounds are proved for plain SGD "
-                    "(the tracker still measures)")
-        if group.get("nesterov", False):
-            return "SGD with Nesterov momentum: the bounds are proved for plain SGD"
-        if group.get("maximize", False):
-            return "SGD with maximize=True: the bounds are stated for minimisation"
-    return ""
 
 
 class StabilityTracker:
@@ -144,10 +133,9 @@ class StabilityTracker:
             raise ValueError(f"estimate_every must be a whole number >= 1, got {estimate_every!r}")
         self.estimate_every = estimate_every
         self.estimate_options = dict(estimate_options or {})
-        self.preserve_host_rng = preserve_host_rng
-        self._host_rng_used = False
+        self.host_rng = HostRngGuard(preserve_host_rng)
         self._estimated: Constants | None = None
-        self.optimizer_reason = _optimizer_reason(optimizer)
+        self.optimizer_reason = optimizer_reason(optimizer)
         self._rng = np.random.default_rng(self.seed)
         self.specs = self._neighbour_specs(shadows, swap)
         self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
@@ -188,34 +176,9 @@ class StabilityTracker:
     def _neighbour_specs(self, shadows: int, swap: Sequence[tuple[int, Any]] | None
                          ) -> list[NeighbourSpec]:
         if swap is not None:
-            specs, seen = [], set()
-            for entry in swap:
-                index, example = entry
-                index = int(index)
-                if not 0 <= index < self.n:
-                    raise IndexError(f"swap index {index} is outside the training set "
-                                     f"(0..{self.n - 1})")
-                if index in seen:
-                    raise ValueError(f"swap index {index} appears twice")
-                seen.add(index)
-                specs.append(NeighbourSpec(index, example, "explicit"))
-            return specs
-        if isinstance(shadows, bool) or not isinstance(shadows, int) or shadows < 0:
-            raise ValueError(f"shadows must be a whole number >= 0, got {shadows!r}")
-        if shadows > self.n:
-            raise ValueError(f"shadows={shadows} is larger than the training set ({self.n})")
-        indices = self._rng.choice(self.n, size=shadows, replace=False)
-        if self.replacements is not None:
-            size = len(self.replacements)
-            if size < 1:
-                raise ValueError("the replacement set is empty")
-            sources = self._rng.choice(size, size=shadows, replace=shadows > size)
-            return [NeighbourSpec(int(i), self._fetch(self.replacements, j), "holdout", int(j))
-                    for i, j in zip(indices, sources)]
-        others = np.setdiff1d(np.arange(self.n), indices)
-        sources = self._rng.choice(others, size=shadows, replace=shadows > len(others))
-        return [NeighbourSpec(int(i), self._fetch(self.train_set, j), "train", int(j))
-                for i, j in zip(indices, sources)]
+            return explicit_neighbours(swap, self.n)
+        return seeded_neighbours(shadows, self.n, self._rng, self._fetch, self.train_set,
+                                 self.replacements)
 
     def _loss_of(self, model: nn.Module, batch: Any) -> torch.Tensor:
         if self.step_loss is not None:
@@ -312,13 +275,17 @@ class StabilityTracker:
             return
         active = [s for s in self.engine.shadows if s.active]
         after = torch.get_rng_state()
-        host = self._host_rng_states()
+        host = self.host_rng.save(first_epoch=self.epoch == 0)
         try:
             faulted = self.engine.step(active, group, self.steps)
         finally:
             torch.set_rng_state(after)
-            if host is not None:
-                self._restore_host_rng(host)
+            if host is not None and self.host_rng.restore(host):
+                self._warn_once("host_rng", "the shadows' steps draw from Python's random or "
+                                "NumPy's global RNG; the tracker now restores both after every "
+                                "step so your run is unchanged, but it replays only torch's RNG "
+                                "for the shadows: draw augmentation randomness from torch",
+                                UserWarning)
         for shadow in faulted:
             warnings.warn(f"{shadow.label} (swapping index {shadow.spec.index}) hit a non-finite "
                           f"loss or parameter at step {self.steps}; it is frozen and marked, the "
@@ -331,36 +298,6 @@ class StabilityTracker:
         hit_counts = [int(np.count_nonzero(drawn == s.spec.index)) for s in self.shadows]
         self.history.record(max(rates), len(drawn), drawn, hit_counts)
         self.steps += 1
-
-    def _host_rng_states(self) -> tuple[Any, Any] | None:
-        """Python's and NumPy's global RNG states, when they need guarding around the shadows.
-
-        Saving them costs ~70 us a step, so by default (``preserve_host_rng=None``) they are
-        guarded during the first epoch only, where the tracker also checks whether the shadows'
-        steps draw from them; if they do, guarding stays on for the rest of the run.
-        """
-        wanted = self.preserve_host_rng
-        if wanted is False:
-            return None
-        if wanted is None and not self._host_rng_used and self.epoch > 0:
-            return None
-        return random.getstate(), np.random.get_state()
-
-    def _restore_host_rng(self, states: tuple[Any, Any]) -> None:
-        python_state, numpy_state = states
-        if self.preserve_host_rng is None and not self._host_rng_used:
-            now = np.random.get_state()
-            changed = random.getstate() != python_state or now[2:] != numpy_state[2:] or \
-                not np.array_equal(now[1], numpy_state[1])
-            if changed:
-                self._host_rng_used = True
-                self._warn_once("host_rng", "the shadows' steps draw from Python's random or "
-                                "NumPy's global RNG; the tracker now restores both after every "
-                                "step so your run is unchanged, but it replays only torch's RNG "
-                                "for the shadows: draw augmentation randomness from torch",
-                                UserWarning)
-        random.setstate(python_state)
-        np.random.set_state(numpy_state)
 
     def _drawn_indices(self, group: StepGroup) -> np.ndarray:
         """Every training index the step used (a data-parallel tracker gathers all ranks')."""
@@ -564,42 +501,21 @@ class StabilityTracker:
             notes.append("bounds not computed: no constants given (constants=Constants(...) or "
                          "'estimate')")
             return {}
-        decay = max(float(g.get("weight_decay", 0.0) or 0.0) for g in self.optimizer.param_groups)
-        effective = constants.with_weight_decay(decay) if decay > 0 else constants
-        from . import bounds as bounds_module
-
-        history = self.history
-        result = bounds_module.assess_run(
-            regime=effective.regime, step_sizes=history.step_sizes(),
-            batch_sizes=history.batch_sizes(), n=self.n, lipschitz=effective.lipschitz,
-            smoothness=effective.smoothness, strong_convexity=effective.strong_convexity,
-            loss_bound=effective.loss_bound, shadow_hits=history.shadow_hits(),
-            batch_indices=history.flat_indices(), delta=self.delta,
-            not_applicable_reason=self.optimizer_reason)
+        effective = effective_constants(constants, self.optimizer)
+        result = run_bounds(self.history, self.n, effective, self.delta, self.optimizer_reason)
         if effective.source != "declared":
             notes.append("bounds use ESTIMATED constants (lower estimates of L and beta): they "
                          "are indicative, not certified")
         violated = self._audit_assumptions(result, divergence, effective, notes)
-        return {
-            "path_bound": tuple(result.path_bound),
-            "expected_bound": result.expected.value,
-            "high_probability_gap": result.high_probability.value,
-            "uniform_stability": result.uniform_stability.value,
-            "bounds": result.to_dict(),
-            "constants": effective.to_dict(),
-            "assumption_violated": violated,
-        }
+        return reading_fields(result, effective, violated)
 
     def _audit_assumptions(self, result: Any, divergence: list[float], constants: Constants,
                            notes: list[str]) -> bool:
         if constants.regime not in ("convex", "strongly_convex") or not result.path_applicable:
             return False
-        scale = 1.0 + math.sqrt(sum(float((p.detach().double() ** 2).sum())
-                                    for _, p in trainable_parameters(self.model)))
-        broken = []
-        for k, (measured, bound) in enumerate(zip(divergence, result.path_bound)):
-            if bound is not None and measured > bound * (1 + 1e-5) + 1e-6 * scale:
-                broken.append(f"shadow_{k}: measured {measured:.6g} > bound {bound:.6g}")
+        norm = math.sqrt(sum(float((p.detach().double() ** 2).sum())
+                             for _, p in trainable_parameters(self.model)))
+        broken = assumption_breaches(divergence, result.path_bound, norm)
         if not broken:
             return False
         notes.append("assumption audit failed: " + "; ".join(broken))

@@ -129,3 +129,22 @@ def test_substitution_property_over_random_nested_batches(spec, rows, data):
         got = select_rows(out, [r], rows)
         assert _same(got, default_collate([expected]))
     assert _same(batch, default_collate(examples))   # the original batch is never modified
+
+
+def test_host_rng_guard_detects_draws_and_restores_the_states():
+    from sgdstab.lockstep import HostRngGuard
+
+    guard = HostRngGuard()
+    states = guard.save(first_epoch=True)
+    expected = (random.random(), np.random.rand())
+    random.setstate(states[0])
+    np.random.set_state(states[1])
+    states = guard.save(first_epoch=True)
+    assert guard.restore(states) is False           # nothing drawn: nothing detected
+    assert guard.save(first_epoch=False) is None    # after the first epoch: not guarded
+    states = guard.save(first_epoch=True)
+    np.random.rand()
+    assert guard.restore(states) is True and guard.used
+    assert guard.save(first_epoch=False) is not None  # once detected, always guarded
+    assert (random.random(), np.random.rand()) == expected
+    assert HostRngGuard(False).save(first_epoch=True) is None
