@@ -147,6 +147,7 @@ class StabilityTracker:
             placeholder = NeighbourSpec(-1, None, "self")
             self.audit_shadow = self.engine.add_shadow(placeholder, None, "audit")
         self.history = StepHistory(shadows=len(self.shadows))
+        self._has_buffers = any(True for _ in model.buffers())
         self.epoch = 0
         self.steps = 0
         self.readings: list[EpochReading] = []
@@ -249,10 +250,9 @@ class StabilityTracker:
             self.audit_shadow.spec = NeighbourSpec(index, None, "self", index)
             self.audit_shadow.row = row
         group = self._group
-        if not group.batches and any(not s.forked for s in self.engine.shadows):
-            buffers = dict(self.model.named_buffers())
-            if buffers:
-                group.buffers = {name: b.detach().clone() for name, b in buffers.items()}
+        if self._has_buffers and not group.batches and \
+                any(not s.forked for s in self.engine.shadows):
+            group.buffers = {name: b.detach().clone() for name, b in self.model.named_buffers()}
         group.batches.append(batch)
         group.indices.append(indices)
         group.rng_states.append(torch.get_rng_state())
@@ -295,7 +295,11 @@ class StabilityTracker:
         if len(rates) > 1:
             self._warn_once("lrs", "parameter groups use different step sizes; the bounds use the "
                             "largest", UserWarning)
-        hit_counts = [int(np.count_nonzero(drawn == s.spec.index)) for s in self.shadows]
+        if self.shadows:
+            swapped = np.fromiter((s.spec.index for s in self.shadows), dtype=np.int64)
+            hit_counts = (drawn[:, None] == swapped[None, :]).sum(axis=0).tolist()
+        else:
+            hit_counts = []
         self.history.record(max(rates), len(drawn), drawn, hit_counts)
         self.steps += 1
 
