@@ -222,11 +222,20 @@ def main() -> None:
                             timeout=timedelta(seconds=config.get("timeout", 60)))
     try:
         result = run_rank(config)
+        dist.barrier()   # every rank is done with its collectives before the group goes away
     finally:
         dist.destroy_process_group()
     with open(out_path, "w", encoding="utf-8") as handle:
         json.dump(result, handle)
+        handle.flush()
+        os.fsync(handle.fileno())
 
 
 if __name__ == "__main__":
     main()
+    # Leave without running interpreter-exit destructors: a gloo worker thread still being torn
+    # down at exit can abort the process ("terminate called without an active exception") after
+    # the result is safely written.
+    sys.stdout.flush()
+    sys.stderr.flush()
+    os._exit(0)
