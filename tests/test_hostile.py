@@ -160,3 +160,16 @@ def test_optimizer_step_outside_tracker_batches_warns():
             opt.step()
             break
     assert any("without a batch" in str(w.message) for w in caught)
+
+
+def test_one_shadow_or_none_gives_none_with_reasons_instead_of_dividing_by_zero():
+    data = pebbles()
+    one = _make(data=data, shadows=1, replacements=pebbles(count=10, seed=3))
+    reading = train(one.model, one.optimizer, loader(data), epochs=1, tracker=one)[0]
+    assert reading.gap_estimate is not None and reading.gap_stderr is None
+    assert any("at least 2 shadows" in note for note in reading.notes)
+    none = _make(data=data, shadows=0, audit=False)
+    reading = train(none.model, none.optimizer, loader(data), epochs=1, tracker=none)[0]
+    assert reading.divergence == () and reading.loss_difference_max is None
+    assert reading.train_loss is not None
+    assert any("no shadows" in note for note in reading.notes)
