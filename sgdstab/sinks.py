@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import json
 import os
+import warnings
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
@@ -128,14 +129,31 @@ class RunSinks:
         self.log_dir.mkdir(parents=True, exist_ok=True)
         self.history = JsonlSink(self.log_dir / "history.jsonl")
         self.tensorboard = TensorBoardSink(self.log_dir)
+        self._written = False
 
     def write_run(self, description: Mapping[str, Any]) -> None:
         with open(self.log_dir / "run.json", "w", encoding="utf-8") as handle:
             json.dump(description, handle, indent=2, sort_keys=True)
 
     def write(self, reading: EpochReading) -> None:
+        if not self._written and reading.epoch == 1:
+            self._set_aside_old_history()
+        self._written = True
         self.history.write(reading.to_dict())
         self.tensorboard.write(reading)
+
+    def _set_aside_old_history(self) -> None:
+        """A fresh run (first reading is epoch 1) never appends to an older run's history: the
+        old file is renamed. A resumed run (first reading after epoch 1) appends as it should."""
+        path = self.history.path
+        if path.exists() and path.stat().st_size > 0:
+            number = 1
+            while (aside := path.with_name(f"history.previous-{number}.jsonl")).exists():
+                number += 1
+            path.rename(aside)
+            warnings.warn(f"{path} held an earlier run's readings; moved to {aside.name}. "
+                          "TensorBoard will still show the earlier run's event files in this "
+                          "directory: use a new log_dir per run", UserWarning, stacklevel=4)
 
     def write_advice(self, advice: Any) -> None:
         """advice.json in the run directory and the advice's summary as TensorBoard text."""

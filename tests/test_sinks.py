@@ -72,3 +72,19 @@ def test_non_finite_values_are_written_as_null(tmp_path):
                            train_loss=None, holdout_loss=None)
     record = json.loads(reading.to_json())
     assert record["divergence"] == [None] and record["loss_difference_max"] is None
+
+
+def test_a_fresh_run_in_a_used_directory_sets_the_old_history_aside(run_dir, tmp_path):
+    out, _ = run_dir
+    target = tmp_path / "again"
+    target.mkdir()
+    (target / "history.jsonl").write_text((out / "history.jsonl").read_text())
+    data = pebbles()
+    model = mlp()
+    opt = torch.optim.SGD(model.parameters(), lr=0.2)
+    with pytest.warns(UserWarning, match="earlier run"):
+        with StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data, shadows=1,
+                              log_dir=target) as tracker:
+            train(model, opt, loader(data), epochs=2, tracker=tracker)
+    assert [r["epoch"] for r in read_history(target)] == [1, 2]
+    assert len(read_history(target / "history.previous-1.jsonl")) == 3
