@@ -15,14 +15,17 @@ configuration: tracemalloc only sees Python's own allocator, not torch's tensor 
 from __future__ import annotations
 
 import argparse
+import copy
 import json
 import os
+import random
 import statistics
 import subprocess
 import sys
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
+from typing import Any
 
 import torch
 import torch.nn.functional as F
@@ -99,7 +102,7 @@ class Setup:
         return model, opt, loader
 
 
-# -- the loops ----------------------------------------------------------------------------------
+# -- the loops: each one a generator that yields after every step --------------------------------
 def _step(model: nn.Module, opt: torch.optim.Optimizer, x: torch.Tensor, y: torch.Tensor
           ) -> None:
     opt.zero_grad()
@@ -107,102 +110,184 @@ def _step(model: nn.Module, opt: torch.optim.Optimizer, x: torch.Tensor, y: torc
     opt.step()
 
 
-def plain_epochs(setup: Setup, epochs: int) -> list[float]:
-    model, opt, loader = setup.build()
-    times = []
-    for _ in range(epochs):
-        start = time.perf_counter()
-        for x, y in loader:
-            _step(model, opt, x, y)
-        times.append(time.perf_counter() - start)
-    return times
+class PlainLoop:
+    """The user's loop without the tracker."""
+
+    engine = ""
+
+    def __init__(self, setup: Setup) -> None:
+        self.model, self.opt, self.loader = setup.build()
+
+    def spent(self) -> tuple[float, float]:
+        """Seconds spent so far inside the shadows' steps, and in the tracker's bookkeeping."""
+        return 0.0, 0.0
+
+    def epochs(self) -> Iterator[bool]:
+        """Runs epoch after epoch, yielding after every step: True after an epoch's last one."""
+        while True:
+            for x, y in self.loader:
+                _step(self.model, self.opt, x, y)
+                yield False
+            yield True
 
 
-def naive_epochs(setup: Setup, epochs: int, copies: int) -> list[float]:
-    """The hand-written alternative: the main model plus ``copies`` deep copies, each stepped
-    on every batch (the one-row swaps, negligible here, are left out)."""
-    model, opt, loader = setup.build()
-    import copy
+class NaiveLoop(PlainLoop):
+    """The hand-written alternative: the main model plus ``copies`` deep copies, each stepped on
+    every batch (the one-row swaps, negligible here, are left out)."""
 
-    runs = [(model, opt)]
-    for _ in range(copies):
-        other = copy.deepcopy(model)
-        runs.append((other, torch.optim.SGD(other.parameters(), lr=setup.lr, momentum=0.9)))
-    times = []
-    for _ in range(epochs):
-        start = time.perf_counter()
-        for x, y in loader:
-            for m, o in runs:
-                _step(m, o, x, y)
-        times.append(time.perf_counter() - start)
-    return times
+    def __init__(self, setup: Setup, copies: int) -> None:
+        super().__init__(setup)
+        self.runs = [(self.model, self.opt)]
+        for _ in range(copies):
+            other = copy.deepcopy(self.model)
+            self.runs.append((other, torch.optim.SGD(other.parameters(), lr=setup.lr,
+                                                     momentum=0.9)))
+
+    def epochs(self) -> Iterator[bool]:
+        while True:
+            for x, y in self.loader:
+                for model, opt in self.runs:
+                    _step(model, opt, x, y)
+                yield False
+            yield True
 
 
-def tracked_epochs(setup: Setup, epochs: int, shadows: int, engine: str, audit: bool = True
-                   ) -> tuple[list[float], list[float], str]:
-    """Epoch times (finish_epoch included) and, per epoch, the time spent stepping shadows."""
-    model, opt, loader = setup.build()
-    tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=setup.data,
-                               shadows=shadows, engine=engine, audit=audit)
-    stepping = [0.0]
-    inner = tracker.engine.step
+class TrackedLoop(PlainLoop):
+    """The user's loop with the tracker (``finish_epoch`` included)."""
 
-    def timed(*args, **kwargs):
-        start = time.perf_counter()
-        try:
-            return inner(*args, **kwargs)
-        finally:
-            stepping[0] += time.perf_counter() - start
+    def __init__(self, setup: Setup, shadows: int, engine: str, audit: bool = True) -> None:
+        super().__init__(setup)
+        self.tracker = StabilityTracker(self.model, self.opt, loss_fn=F.cross_entropy,
+                                        train_set=setup.data, shadows=shadows, engine=engine,
+                                        audit=audit)
 
-    tracker.engine.step = timed  # type: ignore[method-assign]
-    times, step_times = [], []
-    for _ in range(epochs):
-        stepping[0] = 0.0
-        start = time.perf_counter()
-        for x, y in tracker.batches(loader):
-            _step(model, opt, x, y)
-        tracker.finish_epoch()
-        times.append(time.perf_counter() - start)
-        step_times.append(stepping[0])
-    name = tracker.engine.name
-    tracker.close()
-    return times, step_times, name
+    @property
+    def engine(self) -> str:  # type: ignore[override]
+        return self.tracker.engine.name
+
+    def spent(self) -> tuple[float, float]:
+        spent = self.tracker.time_spent   # the tracker's own account (sgdstab.TimeSpent)
+        return spent.shadow_steps, spent.bookkeeping
+
+    def epochs(self) -> Iterator[bool]:
+        while True:
+            for x, y in self.tracker.batches(self.loader):
+                _step(self.model, self.opt, x, y)
+                yield False
+            self.tracker.finish_epoch()
+            yield True
 
 
 # -- measurement --------------------------------------------------------------------------------
-def steady(times: list[float]) -> float:
-    """Mean epoch time after the first epoch (warm-up, forks and the audit live there)."""
-    return statistics.fmean(times[1:])
+@dataclass
+class Figure:
+    """The median and interquartile range of one ratio over the measured epochs."""
+
+    values: list[float]
+
+    @property
+    def median(self) -> float:
+        return statistics.median(self.values)
+
+    @property
+    def spread(self) -> float:
+        if len(self.values) < 4:
+            return max(self.values) - min(self.values)
+        quartiles = statistics.quantiles(self.values, n=4)
+        return quartiles[2] - quartiles[0]
+
+    def show(self, percent: bool = False) -> str:
+        if percent:
+            return f"{100 * self.median:+.1f}% (±{50 * self.spread:.1f})"
+        return f"{self.median:.2f} (±{self.spread / 2:.2f})"
 
 
-def measure(setup: Setup, repeats: int, epochs: int) -> dict[str, float | str]:
-    ratios: dict[str, list[float]] = {k: [] for k in (
-        "k1", "k1_first", "k8", "k8_per_shadow", "keep_k0", "keep_k1", "keep_k8",
-        "k2_batched_vs_per_shadow", "k4_batched_vs_per_shadow")}
-    engine_k8 = ""
-    for _ in range(repeats):
-        plain = plain_epochs(setup, epochs)
-        base = steady(plain)
-        k1, k1_steps, _ = tracked_epochs(setup, epochs, 1, "per_shadow")
-        ratios["k1"].append(steady(k1) / base)
-        ratios["k1_first"].append(k1[0] / plain[0])
-        ratios["keep_k1"].append((steady(k1) - steady(k1_steps) - base) / steady(k1))
-        k0, _, _ = tracked_epochs(setup, epochs, 0, "auto", audit=False)
-        ratios["keep_k0"].append((steady(k0) - base) / steady(k0))
-        naive = naive_epochs(setup, epochs, 8)
-        k8, k8_steps, engine_k8 = tracked_epochs(setup, epochs, 8, "auto")
-        ratios["k8"].append(steady(k8) / steady(naive))
-        ratios["keep_k8"].append((steady(k8) - steady(k8_steps) - base) / steady(k8))
-        k8p, _, _ = tracked_epochs(setup, epochs, 8, "per_shadow")
-        ratios["k8_per_shadow"].append(steady(k8p) / steady(naive))
-        for k in (2, 4):
-            b, _, _ = tracked_epochs(setup, epochs, k, "batched")
-            p, _, _ = tracked_epochs(setup, epochs, k, "per_shadow")
-            ratios[f"k{k}_batched_vs_per_shadow"].append(steady(b) / steady(p))
-    out: dict[str, float | str] = {k: statistics.median(v) for k, v in ratios.items()}
-    out["engine_k8"] = engine_k8
-    out["plain_epoch_s"] = base
+def interleaved_epochs(loops: dict[str, PlainLoop], epochs: int, chunk: int, seed: int
+                       ) -> dict[str, list[tuple[float, float, float]]]:
+    """Run ``loops`` side by side, ``chunk`` steps of each in turn (order reshuffled every turn),
+    so that every loop's epoch spans the same stretch of wall-clock time as the others'. This
+    machine's speed drifts by up to 40 % within seconds, so whole epochs run one after another
+    would not compare. Returns, per loop and epoch, (epoch time, time inside the shadows'
+    steps, time in the tracker's bookkeeping)."""
+    rng = random.Random(seed)
+    runners = {name: loop.epochs() for name, loop in loops.items()}
+    out: dict[str, list[tuple[float, float, float]]] = {name: [] for name in loops}
+    order = list(loops)
+    for _ in range(epochs):
+        spent = dict.fromkeys(loops, 0.0)
+        before = {name: loop.spent() for name, loop in loops.items()}
+        open_loops = set(loops)
+        while open_loops:
+            rng.shuffle(order)
+            for name in order:
+                if name not in open_loops:
+                    continue
+                start = time.perf_counter()
+                for _ in range(chunk):
+                    if next(runners[name]):
+                        open_loops.discard(name)
+                        break
+                spent[name] += time.perf_counter() - start
+        for name, loop in loops.items():
+            after = loop.spent()
+            out[name].append((spent[name], after[0] - before[name][0],
+                              after[1] - before[name][1]))
     return out
+
+
+def measure(setup: Setup, epochs: int, chunk: int = 8, seed: int = 0) -> dict[str, Any]:
+    """Three groups of loops, each run interleaved (``interleaved_epochs``): plain / K=0 / K=1;
+    the 8-copy loop / K=8 with each engine; K=4 with each engine. The first epoch of every loop
+    (warm-up, the lazy forks, the null-swap audit) is measured apart and left out of the rest."""
+    groups = [
+        {"plain": PlainLoop(setup), "k0": TrackedLoop(setup, 0, "auto", audit=False),
+         "k1": TrackedLoop(setup, 1, "per_shadow")},
+        {"plain": PlainLoop(setup), "naive8": NaiveLoop(setup, 8),
+         "k8": TrackedLoop(setup, 8, "auto"),
+         "k8p": TrackedLoop(setup, 8, "per_shadow"), "k8b": TrackedLoop(setup, 8, "batched")},
+        {"k4b": TrackedLoop(setup, 4, "batched"), "k4p": TrackedLoop(setup, 4, "per_shadow")},
+    ]
+    times: dict[str, list[float]] = {}
+    engine: dict[str, list[float]] = {}
+    bookkeeping: dict[str, list[float]] = {}
+    first: dict[str, float] = {}
+    plain: dict[str, list[float]] = {}   # each loop's own group's plain epochs
+    for number, group in enumerate(groups):
+        measured = interleaved_epochs(group, 1 + epochs, chunk, seed + number)
+        for name in group:
+            key = name if name != "plain" else f"plain{number}"
+            first[key] = measured[name][0][0]
+            times[key] = [t for t, _, _ in measured[name][1:]]
+            engine[key] = [e for _, e, _ in measured[name][1:]]
+            bookkeeping[key] = [b for _, _, b in measured[name][1:]]
+            if "plain" in group:
+                plain[key] = [t for t, _, _ in measured["plain"][1:]]
+    times["plain"], first["plain"] = times["plain0"], first["plain0"]
+
+    def ratio(a: str, b: str) -> Figure:
+        return Figure([x / y for x, y in zip(times[a], times[b])])
+
+    def keep(name: str) -> Figure:
+        """The tracker's own account of its bookkeeping, as a share of the tracked epoch."""
+        return Figure([b / t for b, t in zip(bookkeeping[name], times[name])])
+
+    def extra(name: str) -> Figure:
+        """Tracked epoch minus plain epoch minus the shadows' steps, as a share of the tracked
+        epoch: bookkeeping plus whatever else tracking costs the main run (cache misses after
+        the shadows' steps, the hooks' call overhead)."""
+        return Figure([(t - e - p) / t for t, e, p in zip(times[name], engine[name],
+                                                          plain[name])])
+
+    return {
+        "k1": ratio("k1", "plain"), "k1_first": Figure([first["k1"] / first["plain"]]),
+        "k8": ratio("k8", "naive8"), "k8_per_shadow": ratio("k8p", "naive8"),
+        "k8_batched": ratio("k8b", "naive8"),
+        "keep_k0": keep("k0"), "keep_k1": keep("k1"), "keep_k8": keep("k8"),
+        "extra_k0": extra("k0"), "extra_k1": extra("k1"), "extra_k8": extra("k8"),
+        "k4_batched_vs_per_shadow": ratio("k4b", "k4p"),
+        "engine_k8": groups[1]["k8"].engine,
+        "plain_epoch_ms": 1000 * statistics.median(times["plain"]),
+    }
 
 
 # -- memory (child processes) -------------------------------------------------------------------
@@ -267,63 +352,79 @@ def _mark(value: float, target: float) -> str:
     return "ok" if value <= target else "MISSED"
 
 
+def _table(threads: int, setups: list[Setup], rounds: int) -> dict[str, Any]:
+    torch.set_num_threads(threads)
+    print(f"\n## {threads} thread(s): median (± half the interquartile range) over {rounds} "
+          f"rounds; load average {os.getloadavg()[0]:.2f}")
+    columns = ("setup", "plain ms", "K1/plain", "K1 ep1", "K8/naive", "K8 engine",
+               "K8 per-shadow/naive", "K8 batched/naive", "keep K0", "keep K1", "keep K8",
+               "extra K0", "extra K1", "extra K8", "K4 b/p")
+    print("| " + " | ".join(columns) + " |")
+    print("|" + "---|" * len(columns))
+    rows = []
+    for setup in setups:
+        r = measure(setup, rounds)
+        rows.append(r)
+        print("| " + " | ".join([
+            setup.name, f"{r['plain_epoch_ms']:.0f}", r["k1"].show(),
+            f"{r['k1_first'].median:.2f}", r["k8"].show(), str(r["engine_k8"]),
+            r["k8_per_shadow"].show(), r["k8_batched"].show(), r["keep_k0"].show(True),
+            r["keep_k1"].show(True), r["keep_k8"].show(True), r["extra_k0"].show(True),
+            r["extra_k1"].show(True), r["extra_k8"].show(True),
+            r["k4_batched_vs_per_shadow"].show()]) + " |", flush=True)
+    return {
+        "K1": max(r["k1"].median for r in rows),
+        "K8": max(r["k8"].median for r in rows),
+        "keep": max(max(r["keep_k0"].median, r["keep_k1"].median, r["keep_k8"].median)
+                    for r in rows),
+    }
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--quick", action="store_true", help="3 repeats, batch size 32 only")
-    parser.add_argument("--repeats", type=int, default=None)
-    parser.add_argument("--threads", type=int, default=2)
+    parser.add_argument("--quick", action="store_true", help="4 epochs, batch size 32 only")
+    parser.add_argument("--rounds", type=int, default=None, help="measured epochs per loop")
+    parser.add_argument("--threads", default="1,2",
+                        help="comma-separated torch thread counts, one table each (default 1,2)")
+    parser.add_argument("--no-memory", action="store_true", help="skip the memory children")
     parser.add_argument("--memory-child", nargs=2, metavar=("KIND", "K"), help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.memory_child:
         print(json.dumps(memory_child(args.memory_child[0], int(args.memory_child[1]))))
         return 0
-    torch.set_num_threads(args.threads)
-    repeats = args.repeats or (3 if args.quick else 5)
-    epochs = 3
+    rounds = args.rounds or (4 if args.quick else 6)
     sizes = (32,) if args.quick else (32, 256)
     setups = []
     for batch_size in sizes:
         setups.append(Setup(f"MLP b={batch_size}", sorter_mlp, parcel_readings(4096, 1),
                             batch_size))
         setups.append(Setup(f"CNN b={batch_size}", ScanReader, label_scans(2048, 2), batch_size))
-    print(f"torch {torch.__version__}, {args.threads} threads, {os.cpu_count()} cores, "
-          f"{repeats} repeats x {epochs} epochs (first dropped); load average "
-          f"{os.getloadavg()[0]:.2f}")
-    columns = ("setup", "K1/plain", "K1 ep1", "K8/naive", "K8 engine", "K8 per-shadow/naive",
-               "keep K0", "keep K1", "keep K8", "K2 b/p", "K4 b/p")
-    print(" | ".join(columns))
-    rows = []
+    print(f"torch {torch.__version__}, {os.cpu_count()} cores; every figure is a ratio of "
+          "epochs run in the same round (first epoch of each loop excluded, except 'K1 ep1')")
     start = time.perf_counter()
-    for setup in setups:
-        r = measure(setup, repeats, epochs)
-        rows.append((setup.name, r))
-        print(" | ".join([
-            setup.name, f"{r['k1']:.2f}", f"{r['k1_first']:.2f}", f"{r['k8']:.2f}",
-            str(r["engine_k8"]), f"{r['k8_per_shadow']:.2f}", f"{100 * r['keep_k0']:+.1f}%",
-            f"{100 * r['keep_k1']:+.1f}%", f"{100 * r['keep_k8']:+.1f}%",
-            f"{r['k2_batched_vs_per_shadow']:.2f}", f"{r['k4_batched_vs_per_shadow']:.2f}"]),
-            flush=True)
-    for pinned in (False, True):
-        mem = memory(8, pinned)
-        print(f"memory, K=8, MLP 64-1024-1024-10, b=256, "
-              f"{'mmap threshold pinned' if pinned else 'default allocator'} (one copy = "
-              f"params+grads+momentum = {mem['copy_mb']:.1f} MB; budget for the extra peak = "
-              f"{mem['budget_mb']:.1f} MB): batched +{mem['batched_extra_mb']:.1f} MB "
-              f"({mem['batched_ratio']:.2f} of budget), per-shadow "
-              f"+{mem['per_shadow_extra_mb']:.1f} MB ({mem['per_shadow_ratio']:.2f})", flush=True)
-    worst = {
-        "K1": max(r["k1"] for _, r in rows),
-        "K8": max(r["k8"] for _, r in rows),
-        "keep": max(max(r["keep_k0"], r["keep_k1"], r["keep_k8"]) for _, r in rows),
-        "memory": mem["batched_ratio"],   # pinned allocator: live memory
-    }
-    print(f"summary ({time.perf_counter() - start:.0f} s, load average {os.getloadavg()[0]:.2f}):"
-          f" K1/plain worst {worst['K1']:.2f} (target {TARGET_K1}, "
-          f"{_mark(worst['K1'], TARGET_K1)}); K8/naive worst {worst['K8']:.2f} (target "
-          f"{TARGET_K8}, {_mark(worst['K8'], TARGET_K8)}); bookkeeping worst "
-          f"{100 * worst['keep']:.1f}% (target {100 * TARGET_BOOKKEEPING:.0f}%, "
-          f"{_mark(worst['keep'], TARGET_BOOKKEEPING)}); memory {worst['memory']:.2f} of budget "
-          f"({_mark(worst['memory'], TARGET_MEMORY)})")
+    worst = {int(t): _table(int(t), setups, rounds) for t in args.threads.split(",")}
+    mem = None
+    if not args.no_memory:
+        for pinned in (False, True):
+            mem = memory(8, pinned)
+            print(f"memory, K=8, MLP 64-1024-1024-10, b=256, "
+                  f"{'mmap threshold pinned' if pinned else 'default allocator'} (one copy = "
+                  f"params+grads+momentum = {mem['copy_mb']:.1f} MB; budget for the extra peak "
+                  f"= {mem['budget_mb']:.1f} MB): batched +{mem['batched_extra_mb']:.1f} MB "
+                  f"({mem['batched_ratio']:.2f} of budget), per-shadow "
+                  f"+{mem['per_shadow_extra_mb']:.1f} MB ({mem['per_shadow_ratio']:.2f})",
+                  flush=True)
+    for threads, w in worst.items():
+        print(f"summary, {threads} thread(s) ({time.perf_counter() - start:.0f} s so far, load "
+              f"average {os.getloadavg()[0]:.2f}): K1/plain worst {w['K1']:.2f} (target "
+              f"{TARGET_K1}, {_mark(w['K1'], TARGET_K1)}); K8/naive worst {w['K8']:.2f} (target "
+              f"{TARGET_K8}, {_mark(w['K8'], TARGET_K8)}); bookkeeping worst "
+              f"{100 * w['keep']:.1f}% (target {100 * TARGET_BOOKKEEPING:.0f}%, "
+              f"{_mark(w['keep'], TARGET_BOOKKEEPING)})")
+    if mem is not None:
+        print(f"summary, memory (pinned allocator, live memory): per-shadow "
+              f"{mem['per_shadow_ratio']:.2f} of budget ({_mark(mem['per_shadow_ratio'], 1.0)}),"
+              f" batched {mem['batched_ratio']:.2f} ({_mark(mem['batched_ratio'], 1.0)})")
     return 0
 
 

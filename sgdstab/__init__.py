@@ -24,6 +24,7 @@ _WHERE = {
     "NeighbourSpec": "lockstep",
     "EpochReading": "reading",
     "read_history": "reading",
+    "TimeSpent": "history",
     "StopAdvice": "advice",
     "advise": "advice",
     "write_report": "report",

@@ -393,6 +393,13 @@ class BatchedEngine:
             return self._fallback_step(shadows, group, step)
         return self._apply(stack, gradients, finite, step)
 
+    def freeze_non_finite(self, shadows: Sequence[Shadow], steps: int) -> list[Shadow]:
+        """Freeze the active shadows whose parameters are no longer finite (after a fallback;
+        batched steps check every slot's parameters at each step already)."""
+        if self._fallback is None:
+            return []
+        return self._fallback.freeze_non_finite(shadows, steps)
+
     def _sync_modes(self, modules: Sequence[nn.Module]) -> None:
         modes = [module.training for module in self._main_modules]
         for model in modules:

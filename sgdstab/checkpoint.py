@@ -99,6 +99,7 @@ def restore_tracker(tracker: StabilityTracker, state: Mapping[str, Any]) -> None
                                     spec["source_index"])
         engine.load_shadow_state(shadow, shadow_state)
     tracker.specs = [s.spec for s in tracker.shadows]
+    tracker._swapped = None   # recomputed from the restored specs
     audit = state["audit"]
     if audit is None and tracker.audit_shadow is not None:
         engine.remove_shadow(tracker.audit_shadow)

@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["StepHistory"]
+__all__ = ["StepHistory", "TimeSpent"]
 
 
 @dataclass
@@ -85,3 +85,28 @@ class StepHistory:
         history.hits = [[tuple(p) for p in h] for h in state["hits"]]
         history.steps = int(state["steps"])
         return history
+
+
+@dataclass
+class TimeSpent:
+    """Wall-clock seconds the tracker has spent, by part (``tracker.time_spent``).
+
+    ``recording``: building the recording loader, capturing each batch's indices and RNG state;
+    ``step_hooks``: the optimizer hooks around the shadows' steps (forks, RNG restore, hit
+    counts, the step record); ``shadow_steps``: stepping the shadows; ``epoch_end``:
+    ``finish_epoch`` (probe evaluation, divergences, bounds, writing the sinks).
+    """
+
+    recording: float = 0.0
+    step_hooks: float = 0.0
+    shadow_steps: float = 0.0
+    epoch_end: float = 0.0
+
+    @property
+    def bookkeeping(self) -> float:
+        """Everything but the shadows' own steps."""
+        return self.recording + self.step_hooks + self.epoch_end
+
+    @property
+    def total(self) -> float:
+        return self.bookkeeping + self.shadow_steps

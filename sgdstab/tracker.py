@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import time
 import warnings
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
@@ -23,7 +24,7 @@ from .assessment import (
 )
 from .constants import Constants
 from .engines import make_engine
-from .history import StepHistory
+from .history import StepHistory, TimeSpent
 from .loaders import check_train_set, recording_loader
 from .lockstep import (
     HostRngGuard,
@@ -56,6 +57,16 @@ class ShadowFaultWarning(UserWarning):
     """A shadow hit a non-finite loss or parameter and was frozen."""
 
 
+def default_probe_size(n: int) -> int:
+    """The sampled probe's size when none is given: n/16 within [64, 256] (at most n).
+
+    Each model evaluates the probe at every epoch's end; n/16 rows in eval mode cost about 2 % of
+    an epoch's training compute (a forward pass being about a third of a training step: common
+    practice), 256 rows are plenty for a mean loss, and fewer than 64 make the maximum loss
+    difference a poor estimate of the supremum."""
+    return min(n, 256, max(64, n // 16))
+
+
 class StabilityTracker:
     """Trains ``shadows`` copies of ``model`` on neighbouring datasets in lockstep with your loop.
 
@@ -82,7 +93,7 @@ class StabilityTracker:
         delta: float = 0.05,
         before_step: Callable[[nn.Module], Any] | None = None,
         lazy_fork: bool = True,
-        probe_size: int = 256,
+        probe_size: int | None = None,
         engine: str = "auto",
         loss_bound: float | None = None,
         estimate_every: int = 1,
@@ -119,7 +130,9 @@ class StabilityTracker:
         self.probe_set = probe_set
         self.seed = int(seed)
         self.delta = float(delta)
-        self.probe_size = int(probe_size)
+        self.probe_size = default_probe_size(self.n) if probe_size is None else int(probe_size)
+        if self.probe_size < 1:
+            raise ValueError(f"probe_size must be at least 1, got {probe_size}")
         self.lazy_fork = bool(lazy_fork)
         self.declared_constants = constants if isinstance(constants, Constants) else None
         self.estimate_constants = constants == "estimate"
@@ -159,6 +172,8 @@ class StabilityTracker:
         self._warned: set[str] = set()
         self._assumption_violated = False
         self._checked_batch = False
+        self.time_spent = TimeSpent()
+        self._swapped: np.ndarray | None = None   # the shadows' swapped indices, for hit counts
         self.sinks = RunSinks(log_dir) if log_dir is not None and self._writes_files() else None
         if not self.lazy_fork:
             for shadow in self.shadows:
@@ -216,11 +231,16 @@ class StabilityTracker:
     # -- the loop -------------------------------------------------------------------------------
     def batches(self, loader: DataLoader) -> Iterator[Any]:
         """Yield exactly the loader's batches, recording their indices and RNG states."""
+        clock, spent = time.perf_counter, self.time_spent
+        start = clock()
         sibling, recorder = recording_loader(loader, self.train_set)
         self._set_rows(loader.collate_fn)
+        spent.recording += clock() - start
         for batch in sibling:
+            start = clock()
             indices = recorder.drawn.popleft()
             self._on_batch(batch, indices)
+            spent.recording += clock() - start
             yield batch
 
     def _check_batch(self, batch: Any) -> None:
@@ -258,27 +278,39 @@ class StabilityTracker:
         group.rng_states.append(torch.get_rng_state())
 
     def _before_main_step(self, optimizer: torch.optim.Optimizer, args: Any, kwargs: Any) -> None:
+        start = time.perf_counter()
         group = self._group
-        if not group.batches:
-            return
-        drawn = self._drawn_indices(group)
-        for shadow in self.engine.shadows:
-            if not shadow.forked and shadow.spec.index in drawn:
-                self.engine.fork(shadow, self.steps, group.buffers)
+        waiting = [s for s in self.engine.shadows if not s.forked]
+        if group.batches and waiting:
+            drawn = self._drawn_indices(group)
+            for shadow in waiting:
+                if shadow.spec.index in drawn:
+                    self.engine.fork(shadow, self.steps, group.buffers)
+        self.time_spent.step_hooks += time.perf_counter() - start
 
     def _after_main_step(self, optimizer: torch.optim.Optimizer, args: Any, kwargs: Any) -> None:
+        start = time.perf_counter()
+        stepping = self._step_shadows(optimizer)
+        self.time_spent.shadow_steps += stepping
+        self.time_spent.step_hooks += time.perf_counter() - start - stepping
+
+    def _step_shadows(self, optimizer: torch.optim.Optimizer) -> float:
+        """Step the shadows after the main step and record it; returns the seconds spent inside
+        the engine's step."""
         group, self._group = self._group, StepGroup([], [], [])
         if not group.batches:
             self._warn_once("unrecorded", "optimizer.step() ran without a batch from "
                             "tracker.batches(): the shadows skipped this step and no longer "
                             "follow the main run", LockstepWarning)
-            return
+            return 0.0
         active = [s for s in self.engine.shadows if s.active]
         after = torch.get_rng_state()
         host = self.host_rng.save(first_epoch=self.epoch == 0)
+        engine_start = time.perf_counter()
         try:
             faulted = self.engine.step(active, group, self.steps)
         finally:
+            stepping = time.perf_counter() - engine_start
             torch.set_rng_state(after)
             if host is not None and self.host_rng.restore(host):
                 self._warn_once("host_rng", "the shadows' steps draw from Python's random or "
@@ -286,22 +318,27 @@ class StabilityTracker:
                                 "step so your run is unchanged, but it replays only torch's RNG "
                                 "for the shadows: draw augmentation randomness from torch",
                                 UserWarning)
-        for shadow in faulted:
-            warnings.warn(f"{shadow.label} (swapping index {shadow.spec.index}) hit a non-finite "
-                          f"loss or parameter at step {self.steps}; it is frozen and marked, the "
-                          "other shadows and the main run go on", ShadowFaultWarning, stacklevel=3)
+        self._report_faults(faulted)
         drawn = self._drawn_indices(group)
         rates = {float(g["lr"]) for g in optimizer.param_groups}
         if len(rates) > 1:
             self._warn_once("lrs", "parameter groups use different step sizes; the bounds use the "
                             "largest", UserWarning)
         if self.shadows:
-            swapped = np.fromiter((s.spec.index for s in self.shadows), dtype=np.int64)
-            hit_counts = (drawn[:, None] == swapped[None, :]).sum(axis=0).tolist()
+            if self._swapped is None:
+                self._swapped = np.fromiter((s.spec.index for s in self.shadows), np.int64)
+            hit_counts = (drawn[:, None] == self._swapped[None, :]).sum(axis=0).tolist()
         else:
             hit_counts = []
         self.history.record(max(rates), len(drawn), drawn, hit_counts)
         self.steps += 1
+        return stepping
+
+    def _report_faults(self, faulted: list[Shadow]) -> None:
+        for shadow in faulted:
+            warnings.warn(f"{shadow.label} (swapping index {shadow.spec.index}): "
+                          f"{shadow.fault}; it is frozen and marked, the other shadows and the "
+                          "main run go on", ShadowFaultWarning, stacklevel=4)
 
     def _drawn_indices(self, group: StepGroup) -> np.ndarray:
         """Every training index the step used (a data-parallel tracker gathers all ranks')."""
@@ -388,11 +425,13 @@ class StabilityTracker:
 
     def finish_epoch(self) -> EpochReading:
         """Close the epoch: measure the shadows, compute the bounds, write the sinks."""
+        start = time.perf_counter()
         notes: list[str] = []
         if self._group.batches:
             notes.append(f"{len(self._group.batches)} batch(es) yielded after the last "
                          "optimizer.step() belong to no step")
         self.epoch += 1
+        self._report_faults(self.engine.freeze_non_finite(self.shadows, self.steps))
         divergence, layer, audit = self._divergences()
         divergence = [math.nan if s.fault is not None else d
                       for s, d in zip(self.shadows, divergence)]
@@ -435,6 +474,7 @@ class StabilityTracker:
         self.readings.append(reading)
         if self.sinks is not None:
             self.sinks.write(reading)
+        self.time_spent.epoch_end += time.perf_counter() - start
         return reading
 
     def advise(self, target: float | None = None, **options: Any) -> Any:

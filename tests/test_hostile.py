@@ -45,6 +45,38 @@ def test_nan_in_one_shadow_freezes_it_and_leaves_the_rest_and_the_main_run_alone
     assert any("frozen" in note for note in last.notes)
 
 
+@pytest.mark.parametrize("when", ["mid_epoch", "epoch_end"])
+def test_parameters_gone_non_finite_with_a_finite_loss_are_caught(when):
+    # The per-step check reads the loss only; parameters that turn non-finite are caught by the
+    # next step's loss or, after the epoch's last step, by the check in finish_epoch.
+    data = pebbles()
+    model = mlp(dropout=0.0)
+    opt = torch.optim.SGD(model.parameters(), lr=0.1)
+    tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data, shadows=2,
+                               lazy_fork=False, audit=False, engine="per_shadow")
+    steps = len(loader(data))
+    poison_after = 2 if when == "mid_epoch" else steps - 1
+    with pytest.warns(ShadowFaultWarning) as caught:
+        for k, (x, y) in enumerate(tracker.batches(loader(data))):
+            opt.zero_grad()
+            F.cross_entropy(model(x), y).backward()
+            opt.step()
+            if k == poison_after:
+                with torch.no_grad():
+                    # NaN reaches the next loss; +inf behind tanh saturates and leaves the loss
+                    # finite, so only the epoch-end check sees it
+                    next(tracker.shadows[1].model.parameters())[0, 0] = \
+                        float("nan") if when == "mid_epoch" else float("inf")
+        reading = tracker.finish_epoch()
+    message = str(caught[0].message)
+    if when == "mid_epoch":
+        assert f"non-finite loss at step {poison_after + 1}" in message
+    else:
+        assert f"non-finite parameters found after step {poison_after}" in message
+    assert reading.shadow_faults[0] is None and reading.shadow_faults[1] is not None
+    assert math.isnan(reading.divergence[1]) and math.isfinite(reading.divergence[0])
+
+
 def test_interrupted_run_keeps_completed_epochs_and_closes_the_writer(tmp_path):
     data = pebbles()
     model = mlp()

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import time
 import warnings
 
 import pytest
@@ -313,3 +314,24 @@ def test_host_rng_drawn_by_the_model_is_detected_and_the_run_stays_unchanged():
     with pytest.warns(UserWarning, match="NumPy's global RNG"):
         tracked = run(True)
     assert torch.equal(plain[0], tracked[0]) and plain[1] == tracked[1]
+
+
+def test_time_spent_accounts_for_the_tracker_by_part():
+    data = pebbles()
+    model = mlp()
+    opt = torch.optim.SGD(model.parameters(), lr=0.1)
+    tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data, shadows=2,
+                               engine="per_shadow")
+    spent = tracker.time_spent
+    assert spent.total == 0.0
+    start = time.perf_counter()
+    train(model, opt, loader(data), epochs=2, tracker=tracker)
+    elapsed = time.perf_counter() - start
+    parts = (spent.recording, spent.step_hooks, spent.shadow_steps, spent.epoch_end)
+    assert all(part > 0.0 for part in parts)
+    assert spent.bookkeeping == pytest.approx(spent.total - spent.shadow_steps)
+    assert spent.total < elapsed   # the user's own forward, backward and step are not counted
+    # an epoch-end only call moves epoch_end alone
+    before = (spent.recording, spent.step_hooks, spent.shadow_steps)
+    tracker.finish_epoch()
+    assert (spent.recording, spent.step_hooks, spent.shadow_steps) == before
