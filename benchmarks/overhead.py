@@ -386,6 +386,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--rounds", type=int, default=None, help="measured epochs per loop")
     parser.add_argument("--threads", default="1,2",
                         help="comma-separated torch thread counts, one table each (default 1,2)")
+    parser.add_argument("--batch-sizes", default=None,
+                        help="comma-separated batch sizes (default 32,256; 32 with --quick)")
     parser.add_argument("--no-memory", action="store_true", help="skip the memory children")
     parser.add_argument("--memory-child", nargs=2, metavar=("KIND", "K"), help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
@@ -394,6 +396,8 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     rounds = args.rounds or (4 if args.quick else 6)
     sizes = (32,) if args.quick else (32, 256)
+    if args.batch_sizes:
+        sizes = tuple(int(size) for size in args.batch_sizes.split(","))
     setups = []
     for batch_size in sizes:
         setups.append(Setup(f"MLP b={batch_size}", sorter_mlp, parcel_readings(4096, 1),

@@ -394,11 +394,26 @@ class BatchedEngine:
         return self._apply(stack, gradients, finite, step)
 
     def freeze_non_finite(self, shadows: Sequence[Shadow], steps: int) -> list[Shadow]:
-        """Freeze the active shadows whose parameters are no longer finite (after a fallback;
-        batched steps check every slot's parameters at each step already)."""
-        if self._fallback is None:
-            return []
-        return self._fallback.freeze_non_finite(shadows, steps)
+        """Freeze the active shadows whose parameters are no longer finite; returns them (see
+        ``PerShadowEngine.freeze_non_finite``)."""
+        if self._fallback is not None:
+            return self._fallback.freeze_non_finite(shadows, steps)
+        stack = self._stack
+        faulted: list[Shadow] = []
+        if stack is None:
+            return faulted
+        with torch.no_grad():
+            for shadow in shadows:
+                if not shadow.active or id(shadow) not in stack.slot:
+                    continue
+                j = stack.slot[id(shadow)]
+                if all(bool(torch.isfinite(t[j]).all()) for t in stack.parameters.values()):
+                    continue
+                shadow.state = stack.slice(j)  # type: ignore[attr-defined]
+                stack.slot.pop(id(shadow))
+                shadow.fault = f"non-finite parameters found after step {steps - 1}"
+                faulted.append(shadow)
+        return faulted
 
     def _sync_modes(self, modules: Sequence[nn.Module]) -> None:
         modes = [module.training for module in self._main_modules]
@@ -512,7 +527,8 @@ class BatchedEngine:
     def _apply(self, stack: _Stack, gradients: dict[str, torch.Tensor], finite: torch.Tensor,
                step: int) -> list[Shadow]:
         """The optimizer step over the stack; slots whose loss was not finite keep their state."""
-        held = {j: stack.slice(j) for j in range(len(stack.members)) if not finite[j]}
+        held = {} if bool(finite.all()) else \
+            {j: stack.slice(j) for j in range(len(stack.members)) if not finite[j]}
         for name, stacked in stack.parameters.items():
             stacked.grad = gradients[name]
         for main_group, group in zip(self.main_optimizer.param_groups,
@@ -523,24 +539,18 @@ class BatchedEngine:
         stack.optimizer.step()
         for stacked in stack.parameters.values():
             stacked.grad = None
-        with torch.no_grad():   # a sum is not finite when an element is not (or it overflows:
-            count = len(stack.members)   # then the element-wise check decides)
-            healthy = torch.ones(count, dtype=torch.bool)
-            for stacked in stack.parameters.values():
-                healthy &= torch.isfinite(stacked.reshape(count, -1).sum(dim=1))
-            for j in torch.nonzero(~healthy).flatten().tolist():
-                healthy[j] = all(bool(torch.isfinite(t[j]).all())
-                                 for t in stack.parameters.values())
         self._batched_steps += 1
+        # Per step only the losses are checked (as the per-shadow engine does); parameters that
+        # turn non-finite with a finite loss are caught by the next loss or freeze_non_finite.
+        if bool(finite.all()):
+            return []
         faulted: list[Shadow] = []
         for j, member in enumerate(stack.members):
-            if j == 0 or id(member) not in stack.slot:
+            if j == 0 or id(member) not in stack.slot or bool(finite[j]):
                 continue  # the reference is never frozen; a removed shadow is no longer read
-            if bool(finite[j]) and bool(healthy[j]):
-                continue
-            member.state = held[j] if j in held else stack.slice(j)
+            member.state = held[j]
             stack.slot.pop(id(member))
-            member.fault = f"non-finite loss or parameters at step {step}"
+            member.fault = f"non-finite loss at step {step}"
             faulted.append(member)
         return faulted
 

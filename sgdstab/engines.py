@@ -4,12 +4,13 @@
 optimizer and model. ``"batched"`` (``sgdstab.batched``) steps all forked shadows together; it is
 exact for element-wise optimizers and models that are pure functions of their parameters, and falls
 back to per-shadow stepping, with an ``EngineFallbackWarning`` saying why, for anything else.
-``"auto"`` picks per-shadow below ``AUTO_BATCHED_FROM`` runs (shadows plus the audit) and batched
-from there on when the run allows it. The batched engine also carries a no-swap reference run, so
-for one or two shadows it does more work than per-shadow stepping and is slower (K=2: 1.16-1.56x
-the per-shadow epoch on 2 CPU cores); from K=4 it is faster on MLPs and small-batch CNNs
-(0.78-0.85x) but not on a CNN with batch 256 (1.4x), where vmap's grouped convolutions and layout
-copies cost more than they save: pass ``engine="per_shadow"`` there (benchmarks/README.md).
+``"auto"`` picks batched stepping only where it measured faster and exact
+(``benchmarks/overhead.py``, 2-core CPU): from ``AUTO_BATCHED_FROM`` runs (shadows plus the audit),
+with at least ``AUTO_MIN_THREADS`` torch threads (K=8, batch 32: 0.79x the per-shadow epoch on 2
+threads, 0.93-1.09x on one; K=4 is slower batched everywhere, partly because the batched engine
+also carries a no-swap reference run), and for models without convolutions: vmap runs them as
+grouped convolutions, which need not round every slot alike (a Conv1d model measured a null-swap
+drift of 3e-8) and were slower on batches of 256 (1.2x per-shadow).
 """
 
 from __future__ import annotations
@@ -27,8 +28,9 @@ from torch.func import vmap
 from .batched import BatchedEngine, EngineFallbackWarning
 from .lockstep import LockstepError, LossOf, PerShadowEngine
 
-__all__ = ["make_engine", "batched_refusal", "replayed_dropout_kinds", "ENGINES",
-           "ELEMENTWISE_OPTIMIZERS", "AUTO_BATCHED_FROM", "EngineFallbackWarning"]
+__all__ = ["make_engine", "batched_refusal", "replayed_dropout_kinds", "auto_prefers_per_shadow",
+           "ENGINES", "ELEMENTWISE_OPTIMIZERS", "AUTO_BATCHED_FROM", "AUTO_MIN_THREADS",
+           "EngineFallbackWarning"]
 
 ENGINES = ("auto", "batched", "per_shadow")
 
@@ -41,9 +43,10 @@ ELEMENTWISE_OPTIMIZERS: tuple[type[torch.optim.Optimizer], ...] = (
     torch.optim.RAdam, torch.optim.Rprop, torch.optim.ASGD,
 )
 
-# "auto" uses the batched engine from this many runs (shadows plus the audit) on: K=3 with the
-# audit (4 runs) is about even, K=4 clearly faster (benchmarks/overhead.py, benchmarks/README.md).
-AUTO_BATCHED_FROM = 4
+# "auto" uses the batched engine from this many runs (shadows plus the audit) and torch threads
+# on, for models without convolutions (see the module docstring).
+AUTO_BATCHED_FROM = 8
+AUTO_MIN_THREADS = 2
 
 _DROPOUT_CHECKS: dict[type[nn.Module], tuple[Callable[[torch.Tensor], torch.Tensor],
                                               tuple[int, ...]]] = {
@@ -118,17 +121,37 @@ def batched_refusal(model: nn.Module, optimizer: torch.optim.Optimizer) -> str:
     return ""
 
 
+def auto_prefers_per_shadow(runs: int, threads: int, model: nn.Module | None = None) -> str:
+    """Why ``engine="auto"`` steps ``runs`` runs of ``model`` one by one with ``threads`` torch
+    threads ('' when it takes the batched engine, subject to ``batched_refusal``)."""
+    if model is not None:
+        for name, module in model.named_modules():
+            if isinstance(module, nn.modules.conv._ConvNd):
+                return (f"module {name!r} is a convolution, which batched stepping need not "
+                        "round alike in every slot")
+    if runs < AUTO_BATCHED_FROM:
+        return (f"{runs} run(s) (shadows plus the audit) step faster one by one; batched "
+                f"stepping pays off from {AUTO_BATCHED_FROM}")
+    if threads < AUTO_MIN_THREADS:
+        return (f"with {threads} torch thread(s) batched stepping is no faster (it needs "
+                f"{AUTO_MIN_THREADS} or more to use its larger kernels)")
+    return ""
+
+
 def make_engine(kind: str, model: nn.Module, optimizer: torch.optim.Optimizer, loss_of: LossOf,
-                before_step: Callable[[nn.Module], Any] | None, *, shadows: int
-                ) -> PerShadowEngine | BatchedEngine:
-    """The engine for ``kind`` ("auto", "batched" or "per_shadow") and ``shadows`` runs.
+                before_step: Callable[[nn.Module], Any] | None, *, shadows: int,
+                threads: int | None = None) -> PerShadowEngine | BatchedEngine:
+    """The engine for ``kind`` ("auto", "batched" or "per_shadow") and ``shadows`` runs;
+    ``threads`` (default ``torch.get_num_threads()``) informs the "auto" choice.
 
     A batched request the run does not allow gives the per-shadow engine and an
     ``EngineFallbackWarning`` naming the reason.
     """
     if kind not in ENGINES:
         raise LockstepError(f"engine must be one of {ENGINES}, got {kind!r}")
-    if kind == "per_shadow" or (kind == "auto" and shadows < AUTO_BATCHED_FROM):
+    threads = torch.get_num_threads() if threads is None else int(threads)
+    if kind == "per_shadow" or (kind == "auto" and
+                                auto_prefers_per_shadow(shadows, threads, model)):
         return PerShadowEngine(model, optimizer, loss_of, before_step)
     reason = batched_refusal(model, optimizer)
     if reason:

@@ -45,15 +45,16 @@ def test_nan_in_one_shadow_freezes_it_and_leaves_the_rest_and_the_main_run_alone
     assert any("frozen" in note for note in last.notes)
 
 
+@pytest.mark.parametrize("engine", ["per_shadow", "batched"])
 @pytest.mark.parametrize("when", ["mid_epoch", "epoch_end"])
-def test_parameters_gone_non_finite_with_a_finite_loss_are_caught(when):
+def test_parameters_gone_non_finite_with_a_finite_loss_are_caught(when, engine):
     # The per-step check reads the loss only; parameters that turn non-finite are caught by the
     # next step's loss or, after the epoch's last step, by the check in finish_epoch.
     data = pebbles()
     model = mlp(dropout=0.0)
     opt = torch.optim.SGD(model.parameters(), lr=0.1)
     tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data, shadows=2,
-                               lazy_fork=False, audit=False, engine="per_shadow")
+                               lazy_fork=False, audit=False, engine=engine)
     steps = len(loader(data))
     poison_after = 2 if when == "mid_epoch" else steps - 1
     with pytest.warns(ShadowFaultWarning) as caught:
@@ -75,6 +76,7 @@ def test_parameters_gone_non_finite_with_a_finite_loss_are_caught(when):
         assert f"non-finite parameters found after step {poison_after}" in message
     assert reading.shadow_faults[0] is None and reading.shadow_faults[1] is not None
     assert math.isnan(reading.divergence[1]) and math.isfinite(reading.divergence[0])
+    assert tracker.engine.name == engine
 
 
 def test_interrupted_run_keeps_completed_epochs_and_closes_the_writer(tmp_path):
