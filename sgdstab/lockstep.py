@@ -31,6 +31,7 @@ __all__ = [
     "Shadow",
     "PerShadowEngine",
     "StepGroup",
+    "squared_distance",
 ]
 
 
@@ -276,6 +277,22 @@ def parameters_finite(params: list[torch.Tensor]) -> bool:
         except (AttributeError, RuntimeError):   # pragma: no cover - older or exotic builds
             return all(bool(torch.isfinite(p).all()) for p in params)
         return bool(torch.isfinite(torch.stack(norms)).all())
+
+
+def squared_distance(a: torch.Tensor, b: torch.Tensor | None = None, chunk: int = 1 << 16
+                     ) -> float:
+    """``sum((a - b)**2)`` (or ``sum(a**2)``) in float64, converted a chunk at a time so that no
+    float64 copy of a whole large tensor is made (epoch-end peak memory)."""
+    with torch.no_grad():
+        flat_a = a.detach().reshape(-1)
+        flat_b = None if b is None else b.detach().reshape(-1)
+        total = 0.0
+        for start in range(0, flat_a.numel(), chunk):
+            part = flat_a[start:start + chunk].double()
+            if flat_b is not None:
+                part = part - flat_b[start:start + chunk].double()
+            total += float(torch.dot(part, part))
+        return total
 
 
 def trainable_parameters(model: nn.Module) -> list[tuple[str, nn.Parameter]]:

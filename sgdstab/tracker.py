@@ -34,6 +34,7 @@ from .lockstep import (
     StepGroup,
     preserved_rng,
     select_rows,
+    squared_distance,
     substitute_rows,
     trainable_parameters,
 )
@@ -379,34 +380,38 @@ class StabilityTracker:
         theirs = self.engine.parameters_of(shadow)
         with torch.no_grad():
             for name, p in main:
-                square = float(((p.detach().double() - theirs[name].detach().double()) ** 2).sum())
+                square = squared_distance(p, theirs[name])
                 total += square
                 if layer is not None:
                     layer[name] = max(layer[name], math.sqrt(square))
         return math.sqrt(total)
 
     def _build_probe(self) -> ProbeRows:
+        with preserved_rng():   # once for all rows (a dataset may draw random transforms)
+            return self._gather_probe()
+
+    def _gather_probe(self) -> ProbeRows:
         examples, kinds, owners = [], [], []
         for k, shadow in enumerate(self.shadows):
-            examples += [self._fetch(self.train_set, shadow.spec.index), shadow.spec.replacement]
+            examples += [self.train_set[shadow.spec.index], shadow.spec.replacement]
             kinds += ["out", "in"]
             owners += [k, k]
         if self.probe_set is not None:
             for j in range(len(self.probe_set)):
-                examples.append(self._fetch(self.probe_set, j))
+                examples.append(self.probe_set[j])
                 kinds.append("probe")
                 owners.append(-1)
         sample_rng = np.random.default_rng(self.seed + 1)
         count = min(self.probe_size, self.n)
         for j in np.sort(sample_rng.choice(self.n, size=count, replace=False)):
-            examples.append(self._fetch(self.train_set, j))
+            examples.append(self.train_set[int(j)])
             kinds.append("train")
             owners.append(-1)
         if self.replacements is not None:
             size = len(self.replacements)
             for j in np.sort(sample_rng.choice(size, size=min(self.probe_size, size),
                                                replace=False)):
-                examples.append(self._fetch(self.replacements, j))
+                examples.append(self.replacements[int(j)])
                 kinds.append("holdout")
                 owners.append(-1)
         return ProbeRows.build(examples, kinds, owners, self._collate)
@@ -557,8 +562,7 @@ class StabilityTracker:
                            notes: list[str]) -> bool:
         if constants.regime not in ("convex", "strongly_convex") or not result.path_applicable:
             return False
-        norm = math.sqrt(sum(float((p.detach().double() ** 2).sum())
-                             for _, p in trainable_parameters(self.model)))
+        norm = math.sqrt(sum(squared_distance(p) for _, p in trainable_parameters(self.model)))
         broken = assumption_breaches(divergence, result.path_bound, norm)
         if not broken:
             return False

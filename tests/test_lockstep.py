@@ -12,7 +12,13 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from torch.utils.data._utils.collate import default_collate
 
-from sgdstab.lockstep import LockstepError, preserved_rng, select_rows, substitute_rows
+from sgdstab.lockstep import (
+    LockstepError,
+    preserved_rng,
+    select_rows,
+    squared_distance,
+    substitute_rows,
+)
 
 Pair = namedtuple("Pair", ["image", "label"])
 
@@ -148,3 +154,16 @@ def test_host_rng_guard_detects_draws_and_restores_the_states():
     assert guard.save(first_epoch=False) is not None  # once detected, always guarded
     assert (random.random(), np.random.rand()) == expected
     assert HostRngGuard(False).save(first_epoch=True) is None
+
+
+def test_squared_distance_matches_numpy_in_float64_across_chunks():
+    # Reference: numpy's float64 arithmetic on the same values (a general-purpose library).
+    g = torch.Generator().manual_seed(3)
+    a = torch.randn(300, 70, generator=g)
+    b = a + 1e-4 * torch.randn(300, 70, generator=g)
+    expected = float(((a.numpy().astype(np.float64) - b.numpy().astype(np.float64)) ** 2).sum())
+    for chunk in (7, 1000, 1 << 16):
+        assert squared_distance(a, b, chunk=chunk) == pytest.approx(expected, rel=1e-12)
+    assert squared_distance(a, chunk=999) == pytest.approx(
+        float((a.numpy().astype(np.float64) ** 2).sum()), rel=1e-12)
+    assert squared_distance(a, a.clone()) == 0.0     # the null swap stays exactly zero
