@@ -392,12 +392,15 @@ class PerShadowEngine:
         shadow.forked_at = step
 
     # -- stepping -----------------------------------------------------------------------------
-    def _sync_hyperparameters(self, shadow: Shadow) -> None:
-        for main_group, group in zip(self.main_optimizer.param_groups,
-                                     shadow.optimizer.param_groups):
-            for key, value in main_group.items():
-                if key != "params":
-                    group[key] = value
+    def _hyperparameters(self) -> list[dict[str, Any]]:
+        """The main optimizer's current settings per group (schedulers may have changed them)."""
+        return [{key: value for key, value in group.items() if key != "params"}
+                for group in self.main_optimizer.param_groups]
+
+    @staticmethod
+    def _sync_hyperparameters(shadow: Shadow, settings: list[dict[str, Any]]) -> None:
+        for group, values in zip(shadow.optimizer.param_groups, settings):
+            group.update(values)
 
     def step(self, shadows: Sequence[Shadow], group: StepGroup, step: int) -> list[Shadow]:
         """Take one optimizer step on each shadow, replaying the group's batches and RNG states.
@@ -406,6 +409,7 @@ class PerShadowEngine:
         """
         faulted = []
         modes = [module.training for module in self._main_modules]
+        settings = self._hyperparameters()
         for shadow in shadows:
             if shadow.modes != modes:   # follow the user's train()/eval() choices per module
                 for module, mode in zip(shadow.modules, modes):
@@ -432,7 +436,7 @@ class PerShadowEngine:
             if finite:
                 if self.before_step is not None:
                     self.before_step(shadow.model)
-                self._sync_hyperparameters(shadow)
+                self._sync_hyperparameters(shadow, settings)
                 shadow.optimizer.step()
                 for p in shadow.params:   # shadows step one after another: free each one's
                     p.grad = None         # gradients at once, so only one set is alive

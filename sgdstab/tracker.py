@@ -209,7 +209,7 @@ class StabilityTracker:
         if not isinstance(loss, torch.Tensor) or loss.numel() != 1:
             raise LockstepError("the loss must be a scalar tensor (mean-reduced), got "
                                 f"{getattr(loss, 'shape', type(loss).__name__)}")
-        return loss.reshape(())
+        return loss if loss.dim() == 0 else loss.reshape(())
 
     def _set_rows(self, collate: Callable[[list[Any]], Any]) -> None:
         if self._collate_rows_for is collate:
