@@ -75,17 +75,22 @@ class HostRngGuard:
     """Keeps Python's ``random`` and NumPy's global RNG as they were across the shadows' steps.
 
     Only torch's RNG is replayed for the shadows. Saving the host states costs ~70 us a step, so
-    with ``mode=None`` they are guarded during the first epoch only, where the guard also checks
-    whether the shadows' steps draw from them (``used``); if they do, guarding stays on.
-    ``mode=True`` always guards, ``mode=False`` never does.
+    with ``mode=None`` they are guarded during the first epoch and, after it, at every
+    ``sample_every``-th step only (~2 us a step), where the guard also checks whether the
+    shadows' steps draw from them (``used``); once a draw is seen, guarding stays on at every
+    step. ``mode=True`` always guards, ``mode=False`` never does.
     """
 
-    def __init__(self, mode: bool | None = None) -> None:
+    def __init__(self, mode: bool | None = None, sample_every: int = 32) -> None:
         self.mode = mode
         self.used = False
+        self.sample_every = sample_every
 
-    def save(self, first_epoch: bool) -> tuple[Any, Any] | None:
-        if self.mode is False or (self.mode is None and not self.used and not first_epoch):
+    def save(self, first_epoch: bool, step: int = 0) -> tuple[Any, Any] | None:
+        if self.mode is False:
+            return None
+        if self.mode is None and not self.used and not first_epoch and \
+                step % self.sample_every:
             return None
         return random.getstate(), np.random.get_state()
 

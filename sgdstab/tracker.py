@@ -307,7 +307,7 @@ class StabilityTracker:
             return 0.0
         active = [s for s in self.engine.shadows if s.active]
         after = torch.get_rng_state()
-        host = self.host_rng.save(first_epoch=self.epoch == 0)
+        host = self.host_rng.save(first_epoch=self.epoch == 0, step=self.steps)
         engine_start = time.perf_counter()
         try:
             faulted = self.engine.step(active, group, self.steps)

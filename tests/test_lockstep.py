@@ -147,7 +147,8 @@ def test_host_rng_guard_detects_draws_and_restores_the_states():
     np.random.set_state(states[1])
     states = guard.save(first_epoch=True)
     assert guard.restore(states) is False           # nothing drawn: nothing detected
-    assert guard.save(first_epoch=False) is None    # after the first epoch: not guarded
+    assert guard.save(first_epoch=False, step=1) is None   # after the first epoch: not guarded,
+    assert guard.save(first_epoch=False, step=64) is not None   # except every 32nd step
     states = guard.save(first_epoch=True)
     np.random.rand()
     assert guard.restore(states) is True and guard.used

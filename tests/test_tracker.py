@@ -316,6 +316,34 @@ def test_host_rng_drawn_by_the_model_is_detected_and_the_run_stays_unchanged():
     assert torch.equal(plain[0], tracked[0]) and plain[1] == tracked[1]
 
 
+class LateNumpyNoise(NumpyNoise):
+    """Draws from NumPy's global RNG only once switched on (say, augmentation after warm-up)."""
+
+    noisy = False
+
+    def forward(self, x):
+        return super().forward(x) if self.noisy else self.inner(x)
+
+
+def test_host_rng_draws_that_start_after_the_first_epoch_are_detected_by_sampling():
+    data = pebbles(count=512)
+    torch.manual_seed(0)
+    model = LateNumpyNoise()
+    opt = torch.optim.SGD(model.parameters(), lr=0.1)
+    tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data, shadows=1,
+                               audit=False, engine="per_shadow")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")           # epoch 1: nothing drawn, nothing said
+        train(model, opt, loader(data), epochs=1, tracker=tracker)
+    assert not tracker.host_rng.used
+    for shadow in tracker.shadows:
+        shadow.model.noisy = True
+    model.noisy = True
+    with pytest.warns(UserWarning, match="NumPy's global RNG"):
+        train(model, opt, loader(data), epochs=1, tracker=tracker)   # 32 steps: one sample
+    assert tracker.host_rng.used
+
+
 def test_time_spent_accounts_for_the_tracker_by_part():
     data = pebbles()
     model = mlp()
