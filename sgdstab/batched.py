@@ -1,12 +1,11 @@
 """Batched shadows: every forked shadow stepped together as one stacked computation.
 
-The trainable parameters of the forked shadows are held as stacked tensors (one leading slot per
-run, as ``torch.func.stack_module_state`` builds them) and stepped together: ``vmap`` over
-``functional_call`` + ``grad``, each slot with its own substituted batch, then one optimizer of the
-user's class over the stacked tensors (exact for element-wise optimizers). Slot 0 is a *reference*
-run with no swap: batched kernels need not round like the main model's unbatched ones, so each
-shadow is measured against the reference, which shares its arithmetic. A shadow forked mid-run
-copies the reference, which before its swapped example is drawn is exactly what it would be.
+The forked runs' trainable parameters and optimizer state are held as stacked tensors, one slot
+per run (``stacking``), and stepped together with ``vmap``, each slot on its own substituted batch
+(``stackstep``). Slot 0 is a *reference* run with no swap: batched kernels need not round like the
+main model's unbatched ones, so each shadow is measured against the reference, which shares its
+arithmetic. A shadow forked mid-run copies the reference, which before its swapped example is
+drawn is exactly what it would be.
 
 Whatever the batched path cannot follow exactly makes the engine fall back, once and with a
 warning, to per-shadow stepping; the runs' states move over unchanged.
@@ -15,17 +14,12 @@ warning, to per-shadow stepping; the runs' states move over unchanged.
 from __future__ import annotations
 
 import copy
-import functools
 import warnings
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
 import torch
 from torch import nn
-from torch.func import functional_call, grad_and_value, vmap
-from torch.utils._pytree import tree_flatten, tree_unflatten
 
 from .lockstep import (
     LockstepError,
@@ -34,43 +28,24 @@ from .lockstep import (
     PerShadowEngine,
     Shadow,
     StepGroup,
-    substitute_rows,
 )
+from .stacking import (
+    SlotState,
+    _CannotBatch,
+    _layout,
+    _load_into,
+    _module_over,
+    _Stack,
+    _stack_states,
+    _state_from_module,
+)
+from .stackstep import _StackStepper
 
 __all__ = ["BatchedEngine", "BatchedShadow", "EngineFallbackWarning", "SlotState"]
-
-# State entries that are one value for the whole tensor (step counters and the like); they are
-# shared by all slots, which is right because every slot descends from the same reference run.
-SHARED_STATE_KEYS = frozenset({"step", "eta", "mu", "mu_product"})
-# Above this relative gap between the reference slot's gradient and an unbatched gradient of the
-# same parameters on the same batch and RNG state, the batched forward is not the main run's
-# computation (a different dropout mask, say); rounding alone stays near 1e-6 in float32.
-VERIFY_TOLERANCE = 1e-3
 
 
 class EngineFallbackWarning(UserWarning):
     """The batched engine cannot follow this run exactly; shadows are stepped one by one."""
-
-
-class _CannotBatch(Exception):
-    """The batched path cannot follow this step exactly (the message says why)."""
-
-
-@dataclass
-class SlotState:
-    """One run's own state: trainable parameters and optimizer state, by parameter name."""
-
-    parameters: dict[str, torch.Tensor]
-    optimizer: dict[str, dict[str, Any]] = field(default_factory=dict)
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"parameters": self.parameters, "optimizer": self.optimizer}
-
-    @classmethod
-    def from_dict(cls, state: Mapping[str, Any]) -> SlotState:
-        return cls({k: v.detach().clone() for k, v in state["parameters"].items()},
-                   {k: {key: _clone(v) for key, v in entry.items()}
-                    for k, entry in state["optimizer"].items()})
 
 
 class BatchedShadow(Shadow):
@@ -99,60 +74,6 @@ class BatchedShadow(Shadow):
         self._own_model = value
 
 
-def _clone(value: Any) -> Any:
-    return value.detach().clone() if isinstance(value, torch.Tensor) else copy.deepcopy(value)
-
-
-def _same(a: Any, b: Any) -> bool:
-    if isinstance(a, torch.Tensor) or isinstance(b, torch.Tensor):
-        return (isinstance(a, torch.Tensor) and isinstance(b, torch.Tensor)
-                and a.shape == b.shape and bool(torch.equal(a, b)))
-    return bool(a == b)
-
-
-def _per_element(key: str, value: Any, shape: torch.Size) -> bool:
-    """Whether a single run's optimizer-state entry has one value per parameter element."""
-    return (isinstance(value, torch.Tensor) and value.shape == shape
-            and (len(shape) > 0 or key not in SHARED_STATE_KEYS))
-
-
-class _LossModule(nn.Module):
-    """Wraps the user's loss so ``functional_call`` can run it over substituted parameters."""
-
-    def __init__(self, model: nn.Module, loss_of: LossOf) -> None:
-        super().__init__()
-        self.model = model
-        self.loss_of = loss_of
-
-    def forward(self, batch: Any) -> torch.Tensor:
-        return self.loss_of(self.model, batch)
-
-
-class _Stack:
-    """The runs stepped together: slot ``j`` of every stacked tensor belongs to ``members[j]``."""
-
-    def __init__(self, members: list[BatchedShadow], parameters: dict[str, torch.Tensor],
-                 optimizer: torch.optim.Optimizer) -> None:
-        self.members = members
-        self.slot = {id(m): j for j, m in enumerate(members)}
-        self.parameters = parameters
-        self.optimizer = optimizer
-        self.views: list[nn.Module] | None = None
-
-    def slice(self, j: int, copy: bool = True) -> SlotState:
-        """Slot ``j``'s own state: copies, or (``copy=False``) views into the stack."""
-        parameters = {name: t[j].clone() if copy else t[j] for name, t in self.parameters.items()}
-        optimizer = {}
-        for name, stacked in self.parameters.items():
-            entry = self.optimizer.state.get(stacked)
-            if entry:
-                optimizer[name] = {key: (v[j].clone() if copy else v[j])
-                                   if isinstance(v, torch.Tensor) and v.shape == stacked.shape
-                                   else (_clone(v) if copy else v)
-                                   for key, v in entry.items()}
-        return SlotState(parameters, optimizer)
-
-
 class BatchedEngine:
     """Steps the forked shadows (and a no-swap reference) together as stacked tensors."""
 
@@ -170,30 +91,15 @@ class BatchedEngine:
         self.shadows: list[BatchedShadow] = []
         self.fallback_reason: str | None = None
         self._fallback: PerShadowEngine | None = None
-        names = {id(p): name for name, p in main_model.named_parameters()}
-        self._group_names: list[list[str]] = []
-        for group in main_optimizer.param_groups:
-            try:
-                self._group_names.append([names[id(p)] for p in group["params"]])
-            except KeyError:
-                raise LockstepError("the optimizer holds parameters that are not the model's: "
-                                    "pass the optimizer built over model.parameters()") from None
-        in_optimizer = {name for group in self._group_names for name in group}
-        self._stepped = [name for name, p in main_model.named_parameters()
-                         if p.requires_grad and name in in_optimizer]
-        self._shapes = {name: p.shape for name, p in main_model.named_parameters()}
-        # Parameters outside the optimizer (or frozen) and buffers: one copy shared by all slots.
-        self._constant_names = [name for name, _ in main_model.named_parameters()
-                                if name not in self._stepped]
-        self._constant_names += [name for name, _ in main_model.named_buffers()]
+        self._group_names, self._stepped, self._shapes, self._constant_names = _layout(
+            main_model, main_optimizer)
         self._constants: dict[str, torch.Tensor] = {}
         self._buffer_backup: dict[str, torch.Tensor] = {}
         tensors = [*main_model.parameters(), *main_model.buffers()]
         with torch.no_grad():  # shares the main model's tensors: costs no memory, never written
             self._skeleton = copy.deepcopy(main_model, {id(t): t for t in tensors})
-        self._main_modules = list(main_model.modules())
-        self._module_lists: dict[int, tuple[nn.Module, list[nn.Module]]] = {}
-        self._loss_module = _LossModule(self._skeleton, loss_of)
+        self._stepper = _StackStepper(main_model, main_optimizer, loss_of, self._skeleton,
+                                      self._stepped)
         self.reference = BatchedShadow(NeighbourSpec(-1, None, "reference"), None, "reference",
                                        self)
         self._stack: _Stack | None = None
@@ -202,8 +108,6 @@ class BatchedEngine:
         # the reference) repeat the user's step; the batched audit checks the stacked machinery.
         self._twin_engine = PerShadowEngine(main_model, main_optimizer, loss_of, before_step)
         self._twin: Shadow | None = None
-        self._batched_steps = 0
-        self._verified = False
 
     # -- construction and checkpoints ---------------------------------------------------------
     def add_shadow(self, spec: NeighbourSpec, row: Any, label: str) -> BatchedShadow:
@@ -307,7 +211,7 @@ class BatchedEngine:
             return self.module_of(self.reference) if self.reference.forked else self.main_model
         if self._stack is not None and id(shadow) in self._stack.slot:
             return self._views()[self._stack.slot[id(shadow)]]
-        return self._module_over(self.parameters_of(shadow), self._constants)
+        return _module_over(self._skeleton, self.parameters_of(shadow), self._constants)
 
     # -- fork ---------------------------------------------------------------------------------
     def fork(self, shadow: Shadow, step: int, buffers: Mapping[str, torch.Tensor] | None) -> None:
@@ -338,13 +242,8 @@ class BatchedEngine:
             constants.update({k: v for k, v in buffers.items() if k in constants})
         constants.update({name: main[name] for name in self._constant_names if name in main})
         self._set_constants(constants)
-        parameters = {name: main[name].detach().clone() for name in self._stepped}
-        optimizer = {}
-        for name in self._stepped:
-            entry = self.main_optimizer.state.get(main[name])
-            if entry:
-                optimizer[name] = {key: _clone(v) for key, v in entry.items()}
-        self.reference.state = SlotState(parameters, optimizer)
+        self.reference.state = _state_from_module(self.main_model, self.main_optimizer,
+                                                  self._stepped)
         self.reference.forked = True
         self.reference.forked_at = None
 
@@ -380,10 +279,12 @@ class BatchedEngine:
         assert stack is not None
         versions = [t._version for t in self._constants.values()]
         try:
-            gradients, finite = self._gradients(stack, group)
+            gradients, finite = self._stepper.gradients(stack, group, self._constants,
+                                                        self._views)
             if [t._version for t in self._constants.values()] != versions:
                 raise _CannotBatch("the model changes its buffers in the forward pass")
-            finite = self._hooks(stack, gradients, finite)
+            finite = self._stepper.hooks(stack, gradients, finite, self._views,
+                                         self.gradient_sync, self.before_step)
         except LockstepError:
             raise
         except Exception as error:  # noqa: BLE001 - any failure of the batched path falls back
@@ -415,131 +316,10 @@ class BatchedEngine:
                 faulted.append(shadow)
         return faulted
 
-    def _sync_modes(self, modules: Sequence[nn.Module]) -> None:
-        modes = [module.training for module in self._main_modules]
-        for model in modules:
-            for module, mode in zip(self._modules_of(model), modes):
-                module.training = mode   # follow the user's train()/eval() choices per module
-
-    def _modules_of(self, model: nn.Module) -> list[nn.Module]:
-        found = self._module_lists.get(id(model))
-        if found is None or found[0] is not model:
-            found = (model, list(model.modules()))
-            self._module_lists[id(model)] = found
-        return found[1]
-
-    def _gradients(self, stack: _Stack, group: StepGroup
-                   ) -> tuple[dict[str, torch.Tensor], torch.Tensor]:
-        """Per-slot gradients summed over the group's batches, and which slots stayed finite."""
-        self._sync_modes([self._skeleton])
-        finite = torch.ones(len(stack.members), dtype=torch.bool)
-        total: dict[str, torch.Tensor] | None = None
-        constants = {f"model.{k}": v for k, v in self._constants.items()}
-        for number, (batch, indices, rng_state) in enumerate(
-                zip(group.batches, group.indices, group.rng_states)):
-            hits = {}
-            for j, member in enumerate(stack.members):
-                positions = np.flatnonzero(indices == member.spec.index)
-                if positions.size:
-                    hits[j] = substitute_rows(batch, member.row, positions.tolist(),
-                                              len(indices))
-            tensors, dims, rebuild = _stacked_leaves(batch, len(stack.members), hits)
-            torch.set_rng_state(rng_state)
-            with torch.enable_grad():
-                loss = functools.partial(self._slot_loss, context=(rebuild, constants))
-                gradients, losses = vmap(grad_and_value(loss), in_dims=(0, dims),
-                                         randomness="same")(stack.parameters, tensors)
-            if not self._verified and number == 0:
-                self._verify(stack, batch, rng_state, gradients)
-            finite &= torch.isfinite(losses.detach())
-            if total is None:
-                total = gradients
-            else:
-                for name in total:
-                    total[name] += gradients[name]
-        assert total is not None
-        return total, finite
-
-    def _slot_loss(self, parameters: dict[str, torch.Tensor], leaves: list[torch.Tensor],
-                   context: tuple[Callable[[list[Any]], Any], dict[str, torch.Tensor]]
-                   ) -> torch.Tensor:
-        """One slot's loss: the user's loss of the model over ``parameters`` on its batch."""
-        rebuild, constants = context
-        values = {f"model.{k}": v for k, v in parameters.items()}
-        return functional_call(self._loss_module, {**values, **constants}, (rebuild(leaves),))
-
-    def _verify(self, stack: _Stack, batch: Any, rng_state: torch.Tensor,
-                gradients: Mapping[str, torch.Tensor]) -> None:
-        """Once: the reference slot's gradient must match an unbatched gradient of the same
-        parameters on the same batch with the same RNG state (dropout masks included)."""
-        module = self._views()[0]
-        self._sync_modes([module])
-        own = dict(module.named_parameters())
-        torch.set_rng_state(rng_state)
-        with torch.enable_grad():
-            loss = self.loss_of(module, batch)
-            plain = torch.autograd.grad(loss, [own[name] for name in self._stepped],
-                                        allow_unused=True)
-        gap = norm = 0.0
-        for name, value in zip(self._stepped, plain):
-            value = torch.zeros_like(own[name]) if value is None else value
-            gap += float(((gradients[name][0].double() - value.double()) ** 2).sum())
-            norm += float((value.double() ** 2).sum())
-        relative = (gap ** 0.5) / max(norm ** 0.5, 1e-30)
-        if relative > VERIFY_TOLERANCE and gap ** 0.5 > 1e-12:
-            raise _CannotBatch(
-                f"the batched forward does not reproduce the unbatched one (relative gradient "
-                f"gap {relative:.1e}): random ops vmap draws differently (in-place dropout, "
-                "bernoulli) or a model that is not a pure function of its parameters")
-        self._verified = True
-
-    def _hooks(self, stack: _Stack, gradients: dict[str, torch.Tensor], finite: torch.Tensor
-               ) -> torch.Tensor:
-        """Run gradient_sync and before_step on a module over each slot, as the per-shadow
-        engine does on each shadow; their in-place or replaced gradients go back into the stack."""
-        if self.gradient_sync is None and self.before_step is None:
-            return finite
-        views = self._views()
-        self._sync_modes(views)
-        for j, view in enumerate(views):
-            own = dict(view.named_parameters())
-            given = {}
-            for name in self._stepped:
-                given[name] = gradients[name][j]
-                own[name].grad = given[name]
-            ok = bool(finite[j])
-            if self.gradient_sync is not None:
-                ok = bool(self.gradient_sync(view, ok))
-            if ok and self.before_step is not None:
-                self.before_step(view)
-            for name in self._stepped:
-                current = own[name].grad
-                if current is None:
-                    raise _CannotBatch(f"before_step removed the gradient of {name}")
-                if current is not given[name]:
-                    gradients[name][j].copy_(current)
-                own[name].grad = None
-                if own[name].data_ptr() != stack.parameters[name][j].data_ptr():
-                    raise _CannotBatch(f"before_step replaced the tensor of {name}")
-            finite[j] = ok
-        return finite
-
     def _apply(self, stack: _Stack, gradients: dict[str, torch.Tensor], finite: torch.Tensor,
                step: int) -> list[Shadow]:
         """The optimizer step over the stack; slots whose loss was not finite keep their state."""
-        held = {} if bool(finite.all()) else \
-            {j: stack.slice(j) for j in range(len(stack.members)) if not finite[j]}
-        for name, stacked in stack.parameters.items():
-            stacked.grad = gradients[name]
-        for main_group, group in zip(self.main_optimizer.param_groups,
-                                     stack.optimizer.param_groups):
-            for key, value in main_group.items():
-                if key != "params":
-                    group[key] = value
-        stack.optimizer.step()
-        for stacked in stack.parameters.values():
-            stacked.grad = None
-        self._batched_steps += 1
+        held = self._stepper.update(stack, gradients, finite)
         # Per step only the losses are checked (as the per-shadow engine does); parameters that
         # turn non-finite with a finite loss are caught by the next loss or freeze_non_finite.
         if bool(finite.all()):
@@ -592,55 +372,16 @@ class BatchedEngine:
         old = self._stack
         states = [old.slice(old.slot[id(m)], copy=False) if old is not None and id(m) in old.slot
                   else m.state if m.state is not None else self._state_of(m) for m in members]
-        parameters = {name: torch.stack([s.parameters[name] for s in states])
-                      for name in self._stepped}
-        groups = []
-        for main_group, names in zip(self.main_optimizer.param_groups, self._group_names):
-            settings = {key: value for key, value in main_group.items() if key != "params"}
-            groups.append({**settings,
-                           "params": [parameters[n] for n in names if n in parameters]})
-        optimizer = type(self.main_optimizer)(groups)
-        for name in self._stepped:
-            keys = [tuple(s.optimizer.get(name, {})) for s in states]
-            if len(set(keys)) > 1:
-                raise LockstepError(f"optimizer state of {name} differs in kind between runs")
-            entry = {}
-            for key in keys[0]:
-                values = [s.optimizer[name][key] for s in states]
-                if _per_element(key, values[0], self._shapes[name]):
-                    entry[key] = torch.stack(values)
-                else:
-                    if not all(_same(values[0], v) for v in values[1:]):
-                        raise LockstepError(f"optimizer state {key!r} of {name} differs between "
-                                            "runs that should share it")
-                    entry[key] = _clone(values[0])
-            if entry:
-                optimizer.state[parameters[name]] = entry
+        stack = _stack_states(members, states, self._stepped, self._shapes, self._group_names,
+                              self.main_optimizer)
         for member in members:
             member.state = None
         del states, old
-        self._stack = _Stack(list(members), parameters, optimizer)
+        self._stack = stack
 
     def _views(self) -> list[nn.Module]:
-        stack = self._stack
-        assert stack is not None
-        if stack.views is None:
-            stack.views = [self._module_over({n: t[j] for n, t in stack.parameters.items()},
-                                             self._constants)
-                           for j in range(len(stack.members))]
-        return stack.views
-
-    def _module_over(self, parameters: Mapping[str, torch.Tensor],
-                     constants: Mapping[str, torch.Tensor]) -> nn.Module:
-        """A copy of the model whose parameters and buffers alias the given tensors."""
-        memo: dict[int, Any] = {}
-        for name, p in self._skeleton.named_parameters():
-            tensor = parameters[name] if name in parameters else constants[name]
-            memo[id(p)] = nn.Parameter(tensor, requires_grad=p.requires_grad)
-        for name, b in self._skeleton.named_buffers():
-            memo[id(b)] = constants[name]
-        with torch.no_grad():
-            return copy.deepcopy(self._skeleton, memo)
+        assert self._stack is not None
+        return self._stack.modules(self._skeleton, self._constants)
 
     # -- falling back to per-shadow stepping ----------------------------------------------------
     def _fall_back(self, reason: str) -> None:
@@ -651,7 +392,7 @@ class BatchedEngine:
                                 self.before_step)
         inner.gradient_sync = self.gradient_sync
         # Before any batched step the reference equals the main run exactly: drop it.
-        keep_reference = self.reference.forked and self._batched_steps > 0
+        keep_reference = self.reference.forked and self._stepper.updates > 0
         members = [*self.shadows, *([self.reference] if keep_reference else [])]
         states = {id(m): self._state_of(m) for m in members if m.forked and self._has_state(m)}
         self._stack = None
@@ -673,17 +414,7 @@ class BatchedEngine:
 
     def _load_into_module(self, member: Shadow, state: SlotState,
                           constants: Mapping[str, torch.Tensor]) -> None:
-        named = {**dict(member.model.named_parameters()), **dict(member.model.named_buffers())}
-        with torch.no_grad():
-            for name, value in state.parameters.items():
-                named[name].copy_(value)
-            for name, value in constants.items():
-                named[name].copy_(value)
-        saved = member.optimizer.state_dict()
-        flat = [name for names in self._group_names for name in names]
-        saved["state"] = {k: {key: _clone(v) for key, v in state.optimizer[name].items()}
-                          for k, name in enumerate(flat) if name in state.optimizer}
-        member.optimizer.load_state_dict(saved)
+        _load_into(member.model, member.optimizer, state, constants, self._group_names)
 
     def _fallback_fork(self, shadow: Shadow, step: int,
                        buffers: Mapping[str, torch.Tensor] | None) -> None:
@@ -713,55 +444,3 @@ def _reason(error: BaseException) -> str:
     if isinstance(error, _CannotBatch):
         return first
     return f"vmap cannot run this model or loss ({type(error).__name__}: {first[:160]})"
-
-
-def _stacked_leaves(batch: Any, count: int, hits: Mapping[int, Any]
-                    ) -> tuple[list[torch.Tensor], list[int | None], Callable[[list[Any]], Any]]:
-    """The batch's tensor leaves for vmap over ``count`` slots, where ``hits`` holds the
-    substituted batches of the slots whose example is in this batch: a leaf some hit changes is
-    stacked (dim 0), any other is the main batch's own tensor, unbatched. Also returns a function
-    rebuilding a batch from the leaves."""
-    leaves, spec = tree_flatten(batch)
-    columns = {}
-    for j, other in hits.items():
-        other_leaves, other_spec = tree_flatten(other)
-        if other_spec != spec:
-            raise _CannotBatch("a substituted batch does not have the batch's structure")
-        columns[j] = other_leaves
-    tensors: list[torch.Tensor] = []
-    dims: list[int | None] = []
-    positions: list[int] = []
-    for i, leaf in enumerate(leaves):
-        changed = {j: c[i] for j, c in columns.items() if c[i] is not leaf}
-        if not changed:
-            if isinstance(leaf, torch.Tensor):
-                tensors.append(leaf)
-                dims.append(None)
-                positions.append(i)
-        elif isinstance(leaf, torch.Tensor) and all(isinstance(v, torch.Tensor)
-                                                     for v in changed.values()):
-            tensors.append(torch.stack([changed.get(j, leaf) for j in range(count)]))
-            dims.append(0)
-            positions.append(i)
-        elif not all(_same(value, leaf) for value in changed.values()):
-            raise _CannotBatch("the batch holds non-tensor values that differ between shadows")
-
-    def rebuild(values: list[Any]) -> Any:
-        items = list(leaves)
-        for position, value in zip(positions, values):
-            items[position] = value
-        return tree_unflatten(items, spec)
-
-    return tensors, dims, rebuild
-
-
-def _state_from_module(model: nn.Module, optimizer: torch.optim.Optimizer,
-                       stepped: Sequence[str]) -> SlotState:
-    named = dict(model.named_parameters())
-    parameters = {name: named[name].detach().clone() for name in stepped}
-    state = {}
-    for name in stepped:
-        entry = optimizer.state.get(named[name])
-        if entry:
-            state[name] = {key: _clone(v) for key, v in entry.items()}
-    return SlotState(parameters, state)

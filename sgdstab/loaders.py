@@ -15,11 +15,12 @@ from collections.abc import Iterator, Sized
 from typing import Any
 
 import numpy as np
+import torch
 from torch.utils.data import DataLoader, Dataset, IterableDataset
 
 from .lockstep import LockstepError
 
-__all__ = ["IndexRecorder", "recording_loader", "check_train_set"]
+__all__ = ["IndexRecorder", "recording_loader", "check_train_set", "check_batch_device"]
 
 
 class IndexRecorder:
@@ -82,3 +83,22 @@ def recording_loader(loader: DataLoader, train_set: Dataset) -> tuple[DataLoader
     if loader.num_workers > 0:
         options["prefetch_factor"] = loader.prefetch_factor
     return DataLoader(loader.dataset, **options), recorder
+
+
+def check_batch_device(batch: Any, device: torch.device) -> None:
+    """Refuse a batch with a tensor (at any depth of lists, tuples and dicts) off ``device``:
+    the shadows substitute rows into the batch as the loader yields it."""
+    tensors: list[torch.Tensor] = []
+    stack = [batch]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, torch.Tensor):
+            tensors.append(item)
+        elif isinstance(item, dict):
+            stack.extend(item.values())
+        elif isinstance(item, (list, tuple)):
+            stack.extend(item)
+    for tensor in tensors:
+        if tensor.device != device:
+            raise LockstepError(f"a batch tensor is on {tensor.device} but the model is on "
+                                f"{device}; move data inside step_loss instead")

@@ -7,9 +7,9 @@ from typing import Any
 
 import numpy as np
 
-from .lockstep import NeighbourSpec
+from .lockstep import LockstepError, NeighbourSpec, Shadow, preserved_rng, substitute_rows
 
-__all__ = ["explicit_neighbours", "seeded_neighbours"]
+__all__ = ["explicit_neighbours", "seeded_neighbours", "attach_rows"]
 
 Fetch = Callable[[Any, int], Any]
 
@@ -50,3 +50,20 @@ def seeded_neighbours(shadows: int, n: int, rng: np.random.Generator, fetch: Fet
     sources = rng.choice(others, size=shadows, replace=shadows > len(others))
     return [NeighbourSpec(int(i), fetch(train_set, j), "train", int(j))
             for i, j in zip(indices, sources)]
+
+
+def attach_rows(shadows: Sequence[Shadow], train_set: Any,
+                collate: Callable[[list[Any]], Any]) -> None:
+    """Give every shadow its replacement as a one-row batch made by ``collate``; a replacement
+    whose structure differs from the training example it replaces is refused."""
+    with preserved_rng():
+        for shadow in shadows:
+            shadow.row = collate([shadow.spec.replacement])
+            own = collate([train_set[shadow.spec.index]])
+            try:   # the replacement must have the training examples' structure
+                substitute_rows(own, shadow.row, [0], 1)
+            except LockstepError as error:
+                raise LockstepError(
+                    f"{shadow.label}: the replacement for training example "
+                    f"{shadow.spec.index} does not match the training examples' structure: "
+                    f"{error}") from None

@@ -15,17 +15,12 @@ from torch import nn
 from torch.utils.data import DataLoader, Dataset
 from torch.utils.data._utils.collate import default_collate
 
-from .assessment import (
-    assumption_breaches,
-    effective_constants,
-    optimizer_reason,
-    reading_fields,
-    run_bounds,
-)
+from . import measure
+from .assessment import optimizer_reason
 from .constants import Constants
 from .engines import make_engine
 from .history import StepHistory, TimeSpent
-from .loaders import check_train_set, recording_loader
+from .loaders import check_batch_device, check_train_set, recording_loader
 from .lockstep import (
     HostRngGuard,
     LockstepError,
@@ -34,12 +29,11 @@ from .lockstep import (
     StepGroup,
     preserved_rng,
     select_rows,
-    squared_distance,
-    substitute_rows,
     trainable_parameters,
 )
-from .neighbours import explicit_neighbours, seeded_neighbours
-from .probe import PerExampleLoss, ProbeRows, model_losses, summarise_probe
+from .measure import default_probe_size
+from .neighbours import attach_rows, explicit_neighbours, seeded_neighbours
+from .probe import PerExampleLoss, ProbeRows
 from .reading import EpochReading
 from .sinks import RunSinks
 
@@ -56,16 +50,6 @@ class AssumptionWarning(UserWarning):
 
 class ShadowFaultWarning(UserWarning):
     """A shadow hit a non-finite loss or parameter and was frozen."""
-
-
-def default_probe_size(n: int) -> int:
-    """The sampled probe's size when none is given: n/16 within [64, 256] (at most n).
-
-    Each model evaluates the probe at every epoch's end; n/16 rows in eval mode cost about 2 % of
-    an epoch's training compute (a forward pass being about a third of a training step: common
-    practice), 256 rows are plenty for a mean loss, and fewer than 64 make the maximum loss
-    difference a poor estimate of the supremum."""
-    return min(n, 256, max(64, n // 16))
 
 
 class StabilityTracker:
@@ -216,17 +200,7 @@ class StabilityTracker:
         if self._collate_rows_for is collate:
             return
         self._collate = collate
-        with preserved_rng():
-            for shadow in self.shadows:
-                shadow.row = collate([shadow.spec.replacement])
-                own = collate([self.train_set[shadow.spec.index]])
-                try:   # the replacement must have the training examples' structure
-                    substitute_rows(own, shadow.row, [0], 1)
-                except LockstepError as error:
-                    raise LockstepError(
-                        f"{shadow.label}: the replacement for training example "
-                        f"{shadow.spec.index} does not match the training examples' structure: "
-                        f"{error}") from None
+        attach_rows(self.shadows, self.train_set, collate)
         self._collate_rows_for = collate
         self._probe = None
 
@@ -245,27 +219,10 @@ class StabilityTracker:
             spent.recording += clock() - start
             yield batch
 
-    def _check_batch(self, batch: Any) -> None:
-        device = next(p for _, p in trainable_parameters(self.model)).device
-        tensors: list[torch.Tensor] = []
-        stack = [batch]
-        while stack:
-            item = stack.pop()
-            if isinstance(item, torch.Tensor):
-                tensors.append(item)
-            elif isinstance(item, dict):
-                stack.extend(item.values())
-            elif isinstance(item, (list, tuple)):
-                stack.extend(item)
-        for tensor in tensors:
-            if tensor.device != device:
-                raise LockstepError(f"a batch tensor is on {tensor.device} but the model is on "
-                                    f"{device}; move data inside step_loss instead")
-        self._checked_batch = True
-
     def _on_batch(self, batch: Any, indices: np.ndarray) -> None:
         if not self._checked_batch:
-            self._check_batch(batch)
+            check_batch_device(batch, next(p for _, p in trainable_parameters(self.model)).device)
+            self._checked_batch = True
         if self.audit_shadow is not None and self.audit_shadow.spec.index < 0:
             index = int(indices[0])
             row = select_rows(batch, [0], len(indices))
@@ -362,79 +319,6 @@ class StabilityTracker:
             warnings.warn(message, category, stacklevel=4)
 
     # -- readings -------------------------------------------------------------------------------
-    def _divergences(self) -> tuple[list[float], dict[str, float], float | None]:
-        main = trainable_parameters(self.model)
-        audited_against = main
-        reference = getattr(self.engine, "reference_parameters", lambda: None)()
-        if reference is not None:   # batched engine: measure against its no-swap reference run,
-            main = [(name, reference[name]) for name, _ in main]   # which shares their rounding
-            if self.engine.reference_follows_main():   # else the audit reads the gap to the main
-                audited_against = main
-        layer: dict[str, float] = {name: 0.0 for name, _ in main}
-        values = []
-        for shadow in self.shadows:
-            values.append(self._divergence(shadow, main, layer))
-        audit = None
-        if self.audit_shadow is not None:
-            audit = self._divergence(self.audit_shadow, audited_against, None)
-        return values, layer, audit
-
-    def _divergence(self, shadow: Shadow, main: list[tuple[str, nn.Parameter]],
-                    layer: dict[str, float] | None) -> float:
-        if not shadow.forked:
-            return 0.0
-        total = 0.0
-        theirs = self.engine.parameters_of(shadow)
-        with torch.no_grad():
-            for name, p in main:
-                square = squared_distance(p, theirs[name])
-                total += square
-                if layer is not None:
-                    layer[name] = max(layer[name], math.sqrt(square))
-        return math.sqrt(total)
-
-    def _build_probe(self) -> ProbeRows:
-        with preserved_rng():   # once for all rows (a dataset may draw random transforms)
-            return self._gather_probe()
-
-    def _gather_probe(self) -> ProbeRows:
-        examples, kinds, owners = [], [], []
-        for k, shadow in enumerate(self.shadows):
-            examples += [self.train_set[shadow.spec.index], shadow.spec.replacement]
-            kinds += ["out", "in"]
-            owners += [k, k]
-        if self.probe_set is not None:
-            for j in range(len(self.probe_set)):
-                examples.append(self.probe_set[j])
-                kinds.append("probe")
-                owners.append(-1)
-        sample_rng = np.random.default_rng(self.seed + 1)
-        count = min(self.probe_size, self.n)
-        for j in np.sort(sample_rng.choice(self.n, size=count, replace=False)):
-            examples.append(self.train_set[int(j)])
-            kinds.append("train")
-            owners.append(-1)
-        if self.replacements is not None:
-            size = len(self.replacements)
-            for j in np.sort(sample_rng.choice(size, size=min(self.probe_size, size),
-                                               replace=False)):
-                examples.append(self.replacements[int(j)])
-                kinds.append("holdout")
-                owners.append(-1)
-        return ProbeRows.build(examples, kinds, owners, self._collate)
-
-    def _fresh(self) -> tuple[bool, str]:
-        origins = {s.spec.origin for s in self.shadows}
-        if not self.shadows:
-            return False, "no shadows"
-        if origins == {"holdout"}:
-            return True, ""
-        if "train" in origins:
-            return False, ("the swapped-in examples are other training examples (duplicates), "
-                           "not fresh draws; pass replacements=<held-out set>")
-        return False, ("explicit swap replacements: their independence from the training set is "
-                       "unknown")
-
     def finish_epoch(self) -> EpochReading:
         """Close the epoch: measure the shadows, compute the bounds, write the sinks."""
         start = time.perf_counter()
@@ -445,49 +329,53 @@ class StabilityTracker:
         self.epoch += 1
         self._report_faults(self.engine.freeze_non_finite(self.shadows, self.steps))
         divergence, layer, audit = self._divergences()
-        divergence = [math.nan if s.fault is not None else d
-                      for s, d in zip(self.shadows, divergence)]
+        divergence = measure.masked_faults(divergence, self.shadows)
         if self._probe is None:
-            self._probe = self._build_probe()
-        main_losses = model_losses(self.model, self._probe, self._per_example)
-        reference_module = getattr(self.engine, "reference_module", lambda: None)()
-        reference_losses = None if reference_module is None else \
-            model_losses(reference_module, self._probe, self._per_example)
-        base_losses = main_losses if reference_losses is None else reference_losses
-        shadow_losses = []
-        for shadow in self.shadows:
-            if shadow.fault is not None:
-                shadow_losses.append(np.full_like(main_losses, np.nan))
-            elif shadow.forked:
-                shadow_losses.append(model_losses(self.engine.module_of(shadow), self._probe,
-                                                  self._per_example))
-            else:
-                shadow_losses.append(base_losses)
-        fresh, reason = self._fresh()
-        kinds = ("out", "in", "probe") if self.probe_set is not None else \
-            ("out", "in", "train", "holdout")
-        summary = summarise_probe(main_losses, shadow_losses, self._probe, fresh, reason, kinds,
-                                  reference=reference_losses)
+            self._probe = measure.build_probe(
+                self.shadows, self.train_set, n=self.n, probe_set=self.probe_set,
+                replacements=self.replacements, size=self.probe_size, seed=self.seed,
+                collate=self._collate)
+        summary = measure.probe_summary(self.model, self.engine, self.shadows, self._probe,
+                                        self._per_example, has_probe_set=self.probe_set is not None)
         notes += summary.notes
-        audit_value = self._finish_audit(audit, notes)
-        bound_fields = self._bounds(divergence, notes)
-        faults = tuple(s.fault for s in self.shadows)
-        for k, fault in enumerate(faults):
-            if fault is not None:
-                notes.append(f"shadow_{k} frozen: {fault}")
-        reading = EpochReading(
-            epoch=self.epoch, steps=self.steps, divergence=tuple(divergence),
-            audit_divergence=audit_value, layer_divergence=layer,
-            loss_difference_max=summary.loss_difference_max,
-            loss_difference_mean=summary.loss_difference_mean,
-            gap_estimate=summary.gap_estimate, gap_stderr=summary.gap_stderr,
-            train_loss=summary.train_loss, holdout_loss=summary.holdout_loss,
-            shadow_faults=faults, notes=tuple(notes), **bound_fields)
+        audit = measure.settle_audit(self.engine, self.audit_shadow, audit, notes,
+                                     LockstepWarning)
+        if audit is not None:   # its verdict is in and the engine dropped it
+            self.audit_shadow = None
+        bound_fields, violated = measure.epoch_bounds(
+            self.current_constants(), divergence, notes, history=self.history, n=self.n,
+            delta=self.delta, optimizer=self.optimizer, optimizer_reason=self.optimizer_reason,
+            model=self.model, warned=self._assumption_violated, category=AssumptionWarning)
+        self._assumption_violated = self._assumption_violated or violated
+        reading = measure.epoch_reading(self.epoch, self.steps, self.shadows, divergence, audit,
+                                        layer, summary, bound_fields, notes)
         self.readings.append(reading)
         if self.sinks is not None:
             self.sinks.write(reading)
         self.time_spent.epoch_end += time.perf_counter() - start
         return reading
+
+    def _divergences(self) -> tuple[list[float], dict[str, float], float | None]:
+        """The shadows' and the audit's divergences (a data-parallel tracker compares ranks')."""
+        return measure.divergences(self.engine, self.model, self.shadows, self.audit_shadow)
+
+    def current_constants(self) -> Constants | None:
+        """The constants the bounds use now (declared, or running-maximum estimates).
+
+        Estimates are refreshed at the end of every ``estimate_every``-th epoch (and the first),
+        on a seeded sample of training examples, with ``estimate_options`` passed to
+        ``Constants.estimate`` (e.g. ``iterations``, ``per_example``).
+        """
+        if not self.estimate_constants:
+            return self.declared_constants
+        if self._estimated is None or (self.epoch - 1) % self.estimate_every == 0:
+            chosen = measure.constants_rows(self.n, self.probe_size, self.seed)
+            batch = self._collate([self._fetch(self.train_set, j) for j in chosen])
+            self._estimated = measure.estimate_constants(
+                self.model, batch, self._estimated, loss_fn=self.loss_fn,
+                step_loss=self.step_loss, loss_bound=self.loss_bound,
+                options=self.estimate_options)
+        return self._estimated
 
     def advise(self, target: float | None = None, **options: Any) -> Any:
         """Stop suggestions from the readings so far (``sgdstab.advice.StopAdvice``).
@@ -507,82 +395,6 @@ class StabilityTracker:
         if self.sinks is not None:
             self.sinks.write_advice(advice)
         return advice
-
-    def _finish_audit(self, audit: float | None, notes: list[str]) -> float | None:
-        shadow = self.audit_shadow
-        if shadow is None or audit is None:
-            return None
-        if not shadow.forked:
-            notes.append("null-swap audit inconclusive: its example was never drawn")
-        elif audit != 0.0:
-            warnings.warn(
-                f"LOCKSTEP BROKEN: the null-swap shadow (example {shadow.spec.index} swapped with "
-                f"itself) drifted {audit:.3e} from the main run, where it must stay at exactly 0. "
-                "The divergences are not trustworthy. Likely causes: a non-deterministic op, RNG "
-                "consumed outside the replayed region (between batches, or in code the shadows do "
-                "not run: use step_loss for in-loop augmentation), a batch mutated in place, a "
-                "loss or clipping the shadows do not repeat (see before_step).",
-                LockstepWarning, stacklevel=3)
-            notes.append(f"lockstep broken: null-swap divergence {audit:.3e}")
-        self.engine.remove_shadow(shadow)
-        self.audit_shadow = None
-        return audit
-
-    def current_constants(self) -> Constants | None:
-        """The constants the bounds use now (declared, or running-maximum estimates).
-
-        Estimates are refreshed at the end of every ``estimate_every``-th epoch (and the first),
-        on a seeded sample of training examples, with ``estimate_options`` passed to
-        ``Constants.estimate`` (e.g. ``iterations``, ``per_example``).
-        """
-        if not self.estimate_constants:
-            return self.declared_constants
-        due = self._estimated is None or (self.epoch - 1) % self.estimate_every == 0
-        if due:
-            from .constants import Constants as _Constants
-
-            chosen = np.random.default_rng(self.seed + 2).choice(
-                self.n, size=min(self.probe_size, self.n), replace=False)
-            batch = self._collate([self._fetch(self.train_set, j) for j in chosen])
-            fresh = _Constants.estimate(self.model, batch, loss_fn=self.loss_fn,
-                                        step_loss=self.step_loss, loss_bound=self.loss_bound,
-                                        **self.estimate_options)
-            self._estimated = fresh if self._estimated is None else \
-                self._estimated.merged_max(fresh)
-        return self._estimated
-
-    def _bounds(self, divergence: list[float], notes: list[str]) -> dict[str, Any]:
-        constants = self.current_constants()
-        if constants is None:
-            notes.append("bounds not computed: no constants given (constants=Constants(...) or "
-                         "'estimate')")
-            return {}
-        effective = effective_constants(constants, self.optimizer)
-        result = run_bounds(self.history, self.n, effective, self.delta, self.optimizer_reason)
-        if effective.source != "declared":
-            notes.append("bounds use ESTIMATED constants (lower estimates of L and beta): they "
-                         "are indicative, not certified")
-        violated = self._audit_assumptions(result, divergence, effective, notes)
-        return reading_fields(result, effective, violated)
-
-    def _audit_assumptions(self, result: Any, divergence: list[float], constants: Constants,
-                           notes: list[str]) -> bool:
-        if constants.regime not in ("convex", "strongly_convex") or not result.path_applicable:
-            return False
-        norm = math.sqrt(sum(squared_distance(p) for _, p in trainable_parameters(self.model)))
-        broken = assumption_breaches(divergence, result.path_bound, norm)
-        if not broken:
-            return False
-        notes.append("assumption audit failed: " + "; ".join(broken))
-        if not self._assumption_violated:
-            self._assumption_violated = True
-            warnings.warn(
-                "ASSUMPTIONS VIOLATED: a shadow's measured divergence exceeds its pathwise bound ("
-                + "; ".join(broken) + f"). The declared constants (L={constants.lipschitz}, "
-                f"beta={constants.smoothness}, gamma={constants.strong_convexity}) or the "
-                f"{constants.regime} assumption are wrong for this run; its bounds do not hold.",
-                AssumptionWarning, stacklevel=4)
-        return True
 
     # -- checkpoints ----------------------------------------------------------------------------
     def state_dict(self) -> dict[str, Any]:

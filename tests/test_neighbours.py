@@ -4,8 +4,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+import torch
+from torch.utils.data._utils.collate import default_collate
 
-from sgdstab.neighbours import explicit_neighbours, seeded_neighbours
+from sgdstab.lockstep import LockstepError, NeighbourSpec, Shadow
+from sgdstab.neighbours import attach_rows, explicit_neighbours, seeded_neighbours
 
 
 def _fetch(dataset, j):
@@ -34,3 +37,14 @@ def test_explicit_swaps_are_checked():
         explicit_neighbours([(3, "a")], 3)
     with pytest.raises(ValueError):
         explicit_neighbours([(1, "a"), (1, "b")], 3)
+
+
+def test_attached_rows_are_one_row_batches_and_a_mismatched_replacement_is_refused():
+    train = [(torch.full((3,), float(i)), torch.tensor(i % 2)) for i in range(6)]
+    good = Shadow(NeighbourSpec(2, train[5], "train", 5), None, None, None, "shadow_0")
+    attach_rows([good], train, default_collate)
+    features, label = good.row
+    assert torch.equal(features, torch.full((1, 3), 5.0)) and torch.equal(label, torch.tensor([1]))
+    bad = Shadow(NeighbourSpec(4, (torch.zeros(3),), "explicit"), None, None, None, "shadow_1")
+    with pytest.raises(LockstepError, match="shadow_1: the replacement for training example 4"):
+        attach_rows([good, bad], train, default_collate)

@@ -1,0 +1,278 @@
+"""Epoch-end measurement: divergences, probe losses, the null-swap verdict, constants and bounds.
+
+The tracker owns the run's state and calls these at the end of every epoch with the pieces each
+needs; nothing here steps a model, and only ``settle_audit`` changes an engine (it drops the
+audit shadow once its verdict is in).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import torch
+from torch import nn
+
+from .assessment import assumption_breaches, effective_constants, reading_fields, run_bounds
+from .constants import Constants
+from .history import StepHistory
+from .lockstep import Shadow, preserved_rng, squared_distance, trainable_parameters
+from .probe import PerExampleLoss, ProbeRows, ProbeSummary, model_losses, summarise_probe
+from .reading import EpochReading
+
+if TYPE_CHECKING:
+    from .batched import BatchedEngine
+    from .lockstep import PerShadowEngine
+
+__all__ = ["divergences", "divergence", "masked_faults", "default_probe_size", "build_probe",
+           "fresh_replacements", "probe_summary", "settle_audit", "constants_rows",
+           "estimate_constants", "epoch_bounds", "audit_assumptions", "epoch_reading"]
+
+
+# -- divergences --------------------------------------------------------------------------------
+def divergences(engine: PerShadowEngine | BatchedEngine, model: nn.Module,
+                shadows: Sequence[Shadow], audit_shadow: Shadow | None
+                ) -> tuple[list[float], dict[str, float], float | None]:
+    """Each shadow's parameter distance to the main run, the largest per layer, and the audit's.
+
+    With the batched engine the shadows are measured against its no-swap reference run, which
+    shares their rounding; the audit is measured against the main run unless the reference
+    follows it exactly.
+    """
+    main = trainable_parameters(model)
+    audited_against = main
+    reference = getattr(engine, "reference_parameters", lambda: None)()
+    if reference is not None:
+        main = [(name, reference[name]) for name, _ in main]
+        if engine.reference_follows_main():   # else the audit reads the gap to the main run
+            audited_against = main
+    layer: dict[str, float] = {name: 0.0 for name, _ in main}
+    values = [divergence(engine, shadow, main, layer) for shadow in shadows]
+    audit = None
+    if audit_shadow is not None:
+        audit = divergence(engine, audit_shadow, audited_against, None)
+    return values, layer, audit
+
+
+def divergence(engine: PerShadowEngine | BatchedEngine, shadow: Shadow,
+               main: list[tuple[str, nn.Parameter]], layer: dict[str, float] | None) -> float:
+    """``||w_shadow - w_main||_2`` over the trainable parameters (0 for an unforked shadow);
+    raises ``layer[name]`` to each layer's own distance when given."""
+    if not shadow.forked:
+        return 0.0
+    total = 0.0
+    theirs = engine.parameters_of(shadow)
+    with torch.no_grad():
+        for name, p in main:
+            square = squared_distance(p, theirs[name])
+            total += square
+            if layer is not None:
+                layer[name] = max(layer[name], math.sqrt(square))
+    return math.sqrt(total)
+
+
+def masked_faults(values: Sequence[float], shadows: Sequence[Shadow]) -> list[float]:
+    """``values`` with NaN in place of every frozen (faulted) shadow's entry."""
+    return [math.nan if s.fault is not None else d for s, d in zip(shadows, values)]
+
+
+# -- the probe ----------------------------------------------------------------------------------
+def default_probe_size(n: int) -> int:
+    """The sampled probe's size when none is given: n/16 within [64, 256] (at most n).
+
+    Each model evaluates the probe at every epoch's end; n/16 rows in eval mode cost about 2 % of
+    an epoch's training compute (a forward pass being about a third of a training step: common
+    practice), 256 rows are plenty for a mean loss, and fewer than 64 make the maximum loss
+    difference a poor estimate of the supremum."""
+    return min(n, 256, max(64, n // 16))
+
+
+def build_probe(shadows: Sequence[Shadow], train_set: Any, *, n: int, probe_set: Any,
+                replacements: Any, size: int, seed: int,
+                collate: Callable[[list[Any]], Any]) -> ProbeRows:
+    """The rows every model is evaluated on: each shadow's swapped-out and swapped-in example,
+    then the probe set if given, a seeded sample of ``size`` training examples and, with
+    ``replacements``, a seeded sample of those."""
+    with preserved_rng():   # once for all rows (a dataset may draw random transforms)
+        return _gather_probe(shadows, train_set, n, probe_set, replacements, size, seed, collate)
+
+
+def _gather_probe(shadows: Sequence[Shadow], train_set: Any, n: int, probe_set: Any,
+                  replacements: Any, size: int, seed: int,
+                  collate: Callable[[list[Any]], Any]) -> ProbeRows:
+    examples, kinds, owners = [], [], []
+    for k, shadow in enumerate(shadows):
+        examples += [train_set[shadow.spec.index], shadow.spec.replacement]
+        kinds += ["out", "in"]
+        owners += [k, k]
+    if probe_set is not None:
+        for j in range(len(probe_set)):
+            examples.append(probe_set[j])
+            kinds.append("probe")
+            owners.append(-1)
+    sample_rng = np.random.default_rng(seed + 1)
+    for j in np.sort(sample_rng.choice(n, size=min(size, n), replace=False)):
+        examples.append(train_set[int(j)])
+        kinds.append("train")
+        owners.append(-1)
+    if replacements is not None:
+        available = len(replacements)
+        for j in np.sort(sample_rng.choice(available, size=min(size, available),
+                                           replace=False)):
+            examples.append(replacements[int(j)])
+            kinds.append("holdout")
+            owners.append(-1)
+    return ProbeRows.build(examples, kinds, owners, collate)
+
+
+def fresh_replacements(shadows: Sequence[Shadow]) -> tuple[bool, str]:
+    """Whether the swapped-in examples are fresh draws (all from a held-out set), and if not why."""
+    origins = {s.spec.origin for s in shadows}
+    if not shadows:
+        return False, "no shadows"
+    if origins == {"holdout"}:
+        return True, ""
+    if "train" in origins:
+        return False, ("the swapped-in examples are other training examples (duplicates), "
+                       "not fresh draws; pass replacements=<held-out set>")
+    return False, ("explicit swap replacements: their independence from the training set is "
+                   "unknown")
+
+
+def probe_summary(model: nn.Module, engine: PerShadowEngine | BatchedEngine,
+                  shadows: Sequence[Shadow], probe: ProbeRows, per_example: PerExampleLoss, *,
+                  has_probe_set: bool) -> ProbeSummary:
+    """Per-example losses of the main run, the reference run (batched engine) and every shadow
+    on ``probe``, summarised: loss differences, the gap estimate, train and held-out loss.
+
+    A frozen shadow contributes NaN losses; an unforked one has the main (or reference) run's.
+    """
+    main_losses = model_losses(model, probe, per_example)
+    reference_module = getattr(engine, "reference_module", lambda: None)()
+    reference_losses = None if reference_module is None else \
+        model_losses(reference_module, probe, per_example)
+    base_losses = main_losses if reference_losses is None else reference_losses
+    shadow_losses = []
+    for shadow in shadows:
+        if shadow.fault is not None:
+            shadow_losses.append(np.full_like(main_losses, np.nan))
+        elif shadow.forked:
+            shadow_losses.append(model_losses(engine.module_of(shadow), probe, per_example))
+        else:
+            shadow_losses.append(base_losses)
+    fresh, reason = fresh_replacements(shadows)
+    kinds = ("out", "in", "probe") if has_probe_set else ("out", "in", "train", "holdout")
+    return summarise_probe(main_losses, shadow_losses, probe, fresh, reason, kinds,
+                           reference=reference_losses)
+
+
+# -- the null-swap audit ------------------------------------------------------------------------
+def settle_audit(engine: PerShadowEngine | BatchedEngine, shadow: Shadow | None,
+                 audit: float | None, notes: list[str], category: type[Warning]
+                 ) -> float | None:
+    """The null-swap shadow's verdict: a note if its example was never drawn, a ``category``
+    warning if it drifted at all. The shadow is then removed from ``engine``; the result is
+    ``audit``, or None (and nothing removed) when there is no audit shadow or value.
+
+    Warns with ``stacklevel=3``: call it straight from the method the user called.
+    """
+    if shadow is None or audit is None:
+        return None
+    if not shadow.forked:
+        notes.append("null-swap audit inconclusive: its example was never drawn")
+    elif audit != 0.0:
+        warnings.warn(
+            f"LOCKSTEP BROKEN: the null-swap shadow (example {shadow.spec.index} swapped with "
+            f"itself) drifted {audit:.3e} from the main run, where it must stay at exactly 0. "
+            "The divergences are not trustworthy. Likely causes: a non-deterministic op, RNG "
+            "consumed outside the replayed region (between batches, or in code the shadows do "
+            "not run: use step_loss for in-loop augmentation), a batch mutated in place, a "
+            "loss or clipping the shadows do not repeat (see before_step).",
+            category, stacklevel=3)
+        notes.append(f"lockstep broken: null-swap divergence {audit:.3e}")
+    engine.remove_shadow(shadow)
+    return audit
+
+
+# -- constants ----------------------------------------------------------------------------------
+def constants_rows(n: int, size: int, seed: int) -> np.ndarray:
+    """The seeded training indices the constants are estimated on (``min(size, n)`` of them)."""
+    return np.random.default_rng(seed + 2).choice(n, size=min(size, n), replace=False)
+
+
+def estimate_constants(model: nn.Module, batch: Any, previous: Constants | None, *,
+                       loss_fn: Callable[..., torch.Tensor] | None,
+                       step_loss: Callable[[nn.Module, Any], torch.Tensor] | None,
+                       loss_bound: float | None, options: dict[str, Any]) -> Constants:
+    """Estimate the constants on ``batch`` and merge them into ``previous`` (running maximum)."""
+    fresh = Constants.estimate(model, batch, loss_fn=loss_fn, step_loss=step_loss,
+                               loss_bound=loss_bound, **options)
+    return fresh if previous is None else previous.merged_max(fresh)
+
+
+# -- bounds and the assumption audit ------------------------------------------------------------
+def epoch_bounds(constants: Constants | None, divergence: Sequence[float], notes: list[str], *,
+                 history: StepHistory, n: int, delta: float, optimizer: torch.optim.Optimizer,
+                 optimizer_reason: str, model: nn.Module, warned: bool,
+                 category: type[Warning]) -> tuple[dict[str, Any], bool]:
+    """The reading's bound fields for the run so far, and whether a measured divergence broke
+    its pathwise bound this epoch (``category`` warning the first time, unless ``warned``).
+
+    Warns with ``stacklevel=4``: call it straight from the method the user called.
+    """
+    if constants is None:
+        notes.append("bounds not computed: no constants given (constants=Constants(...) or "
+                     "'estimate')")
+        return {}, False
+    effective = effective_constants(constants, optimizer)
+    result = run_bounds(history, n, effective, delta, optimizer_reason)
+    if effective.source != "declared":
+        notes.append("bounds use ESTIMATED constants (lower estimates of L and beta): they "
+                     "are indicative, not certified")
+    violated = audit_assumptions(result, divergence, effective, model, notes, warned, category)
+    return reading_fields(result, effective, violated), violated
+
+
+def audit_assumptions(result: Any, divergence: Sequence[float], constants: Constants,
+                      model: nn.Module, notes: list[str], warned: bool,
+                      category: type[Warning]) -> bool:
+    """Whether a convex run's measured divergences exceed their pathwise bounds (a note each
+    time, a ``category`` warning unless ``warned``). Warns with ``stacklevel=4``, i.e. at the
+    caller of the method that called ``epoch_bounds``."""
+    if constants.regime not in ("convex", "strongly_convex") or not result.path_applicable:
+        return False
+    norm = math.sqrt(sum(squared_distance(p) for _, p in trainable_parameters(model)))
+    broken = assumption_breaches(divergence, result.path_bound, norm)
+    if not broken:
+        return False
+    notes.append("assumption audit failed: " + "; ".join(broken))
+    if not warned:
+        warnings.warn(
+            "ASSUMPTIONS VIOLATED: a shadow's measured divergence exceeds its pathwise bound ("
+            + "; ".join(broken) + f"). The declared constants (L={constants.lipschitz}, "
+            f"beta={constants.smoothness}, gamma={constants.strong_convexity}) or the "
+            f"{constants.regime} assumption are wrong for this run; its bounds do not hold.",
+            category, stacklevel=4)
+    return True
+
+
+# -- the reading --------------------------------------------------------------------------------
+def epoch_reading(epoch: int, steps: int, shadows: Sequence[Shadow], divergence: Sequence[float],
+                  audit: float | None, layer: dict[str, float], summary: ProbeSummary,
+                  bound_fields: dict[str, Any], notes: list[str]) -> EpochReading:
+    """Assemble the epoch's reading; a note is added for every frozen shadow."""
+    faults = tuple(s.fault for s in shadows)
+    for k, fault in enumerate(faults):
+        if fault is not None:
+            notes.append(f"shadow_{k} frozen: {fault}")
+    return EpochReading(
+        epoch=epoch, steps=steps, divergence=tuple(divergence),
+        audit_divergence=audit, layer_divergence=layer,
+        loss_difference_max=summary.loss_difference_max,
+        loss_difference_mean=summary.loss_difference_mean,
+        gap_estimate=summary.gap_estimate, gap_stderr=summary.gap_stderr,
+        train_loss=summary.train_loss, holdout_loss=summary.holdout_loss,
+        shadow_faults=faults, notes=tuple(notes), **bound_fields)
