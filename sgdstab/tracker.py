@@ -262,6 +262,20 @@ class StabilityTracker:
                             "tracker.batches(): the shadows skipped this step and no longer "
                             "follow the main run", LockstepWarning)
             return 0.0
+        stepping = self._run_engine(group) if self.engine.shadows else 0.0
+        drawn = self._drawn_indices(group)
+        rates = {float(g["lr"]) for g in optimizer.param_groups}
+        if len(rates) > 1:
+            self._warn_once("lrs", "parameter groups use different step sizes; the bounds use the "
+                            "largest", UserWarning)
+        hit_counts = self._hit_counts(drawn)
+        self.history.record(max(rates), len(drawn), drawn, hit_counts)
+        self.steps += 1
+        return stepping
+
+    def _run_engine(self, group: StepGroup) -> float:
+        """The engine's step for the active shadows, with the RNG states put back after it;
+        returns the seconds it took."""
         active = [s for s in self.engine.shadows if s.active]
         after = torch.get_rng_state()
         host = self.host_rng.save(first_epoch=self.epoch == 0, step=self.steps)
@@ -278,14 +292,6 @@ class StabilityTracker:
                                 "for the shadows: draw augmentation randomness from torch",
                                 UserWarning)
         self._report_faults(faulted)
-        drawn = self._drawn_indices(group)
-        rates = {float(g["lr"]) for g in optimizer.param_groups}
-        if len(rates) > 1:
-            self._warn_once("lrs", "parameter groups use different step sizes; the bounds use the "
-                            "largest", UserWarning)
-        hit_counts = self._hit_counts(drawn)
-        self.history.record(max(rates), len(drawn), drawn, hit_counts)
-        self.steps += 1
         return stepping
 
     def _hit_counts(self, drawn: np.ndarray) -> list[int]:
