@@ -36,10 +36,12 @@ def _shadow(index: int, replacement, origin: str, label: str = "s") -> Shadow:
     return Shadow(NeighbourSpec(index, replacement, origin), None, None, None, label)
 
 
-def test_default_probe_size_is_n_over_16_within_64_and_256_and_at_most_n():
+def test_default_probe_size_is_n_over_16_within_128_and_256_and_at_most_n():
     assert measure.default_probe_size(10) == 10
-    assert measure.default_probe_size(100) == 64
+    assert measure.default_probe_size(100) == 100
+    assert measure.default_probe_size(1200) == 128
     assert measure.default_probe_size(2048) == 128
+    assert measure.default_probe_size(3200) == 200
     assert measure.default_probe_size(100_000) == 256
 
 
