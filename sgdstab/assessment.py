@@ -43,7 +43,7 @@ def optimizer_reason(optimizer: torch.optim.Optimizer) -> str:
 
 
 def effective_constants(constants: Constants, optimizer: torch.optim.Optimizer) -> Constants:
-    """Fold SGD's weight decay lambda (largest over groups) into the constants (SCIENCE.md §2)."""
+    """Fold SGD's weight decay lambda (largest over groups) into the constants (HRS 2016 Sec. 2)."""
     decay = max(float(g.get("weight_decay", 0.0) or 0.0) for g in optimizer.param_groups)
     return constants.with_weight_decay(decay) if decay > 0 else constants
 

@@ -1,7 +1,7 @@
 """Published stability bounds for SGD in closed form, and their high-probability conversion.
 
 Pure functions of numpy arrays; imports only numpy, scipy and the standard library, so it loads
-without torch. No function writes into its arguments. Notation follows /work/shared/SCIENCE.md:
+without torch. No function writes into its arguments. Notation follows Hardt, Recht & Singer 2016:
 step t (counted from 1) has step size alpha_t and batch size b_t, n training examples, the loss is
 L-Lipschitz, beta-smooth, optionally gamma-strongly convex, with values in [0, M].
 
@@ -22,7 +22,7 @@ Provenance (what was checked with the search tool, and what is from memory):
 - Bousquet & Elisseeff 2002 (JMLR 2, "Stability and generalization"), Thm 12 form
   2 beta + (4 n beta + M) sqrt(ln(1/delta) / (2n)): agrees with the restatement of that theorem in
   Zhou, "Machine Learning", Thm 12.8, found with the search tool.
-- The McDiarmid form of SCIENCE.md §3 is derived in high_probability_gap's comment.
+- The McDiarmid form (bounded differences of the gap) is derived in high_probability_gap's comment.
 """
 
 from __future__ import annotations
@@ -40,7 +40,8 @@ REGIMES = ("convex", "strongly_convex", "nonconvex")
 HRS = 'Hardt, Recht & Singer 2016, "Train faster, generalize better"'
 FROM_MEMORY = "(statement from memory)"
 BOUSQUET_ELISSEEFF = 'Bousquet & Elisseeff 2002, "Stability and generalization", Thm 12'
-MCDIARMID = "McDiarmid's bounded-differences inequality on the gap (SCIENCE.md §3)"
+MCDIARMID = ("McDiarmid's bounded-differences inequality (McDiarmid 1989) on the gap, as in "
+             "Bousquet & Elisseeff 2002, Sec. 3")
 
 _RTOL = 1e-12  # step-size conditions are checked up to this relative round-off
 _PLAIN_SGD = "plain SGD (no momentum, no adaptive step sizes)"
@@ -166,7 +167,7 @@ def _batch_sizes(batch_sizes: Sequence[int] | np.ndarray | int, steps: int) -> n
 
 
 # ---------------------------------------------------------------------------------------------
-# Regime conditions (HRS 2016 Sec. 2-3, from memory; SCIENCE.md §2)
+# Regime conditions (HRS 2016 Sec. 2-3, from memory)
 
 
 def _first_excess(a: np.ndarray, limit: float, label: str) -> str:
@@ -187,7 +188,7 @@ def check_regime(
     """'' if the expansivity conditions of the regime hold at every step, else the reason.
 
     convex: alpha_t <= 2/beta; strongly_convex: 0 < gamma <= beta and alpha_t <= 2/(beta + gamma);
-    nonconvex: beta declared (any step size). Source: HRS 2016 (from memory), SCIENCE.md §2.
+    nonconvex: beta declared (any step size). Source: HRS 2016 (from memory).
     Steps are counted from 1 in the message.
     """
     regime = _regime(regime)
@@ -242,7 +243,7 @@ def convex_bound(
     """
     a = _step_sizes(step_sizes)
     n, lipschitz = _train_size(n), _positive("lipschitz", lipschitz)
-    source = f"{HRS}, convex case {FROM_MEMORY}"
+    source = f"{HRS}, Thm 3.8 (convex)"
     assumptions = _regime_assumptions("convex", lipschitz, smoothness, 0.0) + (_PLAIN_SGD,)
     if smoothness is not None:
         reason = check_regime("convex", a, smoothness)
@@ -285,7 +286,7 @@ def strongly_convex_bound(
     n, lipschitz = _train_size(n), _positive("lipschitz", lipschitz)
     gamma = _positive("strong_convexity", strong_convexity)
     steps = None if steps is None else _steps(steps)
-    source = f"{HRS}, strongly convex case {FROM_MEMORY}"
+    source = f"{HRS}, Thm 3.10 (strongly convex)"
     assumptions = _regime_assumptions("strongly_convex", lipschitz, smoothness, gamma)[:2] + (
         "constant step size alpha <= 1/beta",
         _PLAIN_SGD,
@@ -326,7 +327,7 @@ def nonconvex_bound(
     c, steps = _positive("c", c), _steps(steps)
     n, lipschitz = _train_size(n), _positive("lipschitz", lipschitz)
     beta = _positive("smoothness", smoothness)
-    source = f"{HRS}, non-convex case {FROM_MEMORY}"
+    source = f"{HRS}, Thm 3.12 (non-convex)"
     assumptions = (
         f"f(.; z) in [0, 1], L-Lipschitz (L = {lipschitz:.6g}), beta-smooth (beta = {beta:.6g})",
         f"alpha_t <= c/t (c = {c:.6g}) and non-increasing",
@@ -379,9 +380,9 @@ def high_probability_gap(
 ) -> Bound:
     """R - R_S <= beta_n + (2 n beta_n + M) sqrt(ln(1/delta) / (2n)) with probability >= 1 - delta.
 
-    two_sided: |R - R_S| <= the same with ln(2/delta). Source: McDiarmid's inequality (SCIENCE.md
-    §3; derivation below). Assumes A is beta_n-uniformly stable under
-    replacement of one example, loss in [0, M], i.i.d. sample of size n.
+    two_sided: |R - R_S| <= the same with ln(2/delta). Source: McDiarmid's inequality
+    (McDiarmid 1989; derivation below), as used by Bousquet & Elisseeff 2002. Assumes A is
+    beta_n-uniformly stable under replacement of one example, loss in [0, M], i.i.d. sample of size n.
     """
     # Derivation: replacing z_i moves R(A(S)) by <= beta_n and R_S(A(S)) by <= beta_n + M/n, so the
     # gap D has bounded differences c = 2 beta_n + M/n, and |E D| <= beta_n. McDiarmid:

@@ -165,7 +165,7 @@ def _closed_form_column(args: argparse.Namespace, horizons: list[int]) -> list[b
     elif args.batch_size != 1:
         reason = "the closed form is stated for batch size 1 (one example per step)"
     if reason:
-        source = f"{bounds.HRS}, non-convex case {bounds.FROM_MEMORY}"
+        source = f"{bounds.HRS}, Thm 3.12 (non-convex)"
         return [bounds.Bound(None, False, reason, source, ())] * len(horizons)
     return [
         bounds.nonconvex_bound(

@@ -121,7 +121,7 @@ class Constants:
         return "strongly_convex" if self.strong_convexity > 0 else "convex"
 
     def with_weight_decay(self, weight_decay: float, *, radius: float | None = None) -> Constants:
-        """Constants of ``f + lambda/2 ||w||^2`` (SGD's ``weight_decay=lambda``; SCIENCE §2).
+        """Constants of ``f + lambda/2 ||w||^2`` (SGD's ``weight_decay=lambda``; HRS 2016 Sec. 2).
 
         Smoothness grows by lambda; strong convexity grows by lambda when the loss is convex.
         The gradient gains ``lambda * w``: with ``radius`` R (a bound on ``||w||`` over the
@@ -430,7 +430,7 @@ def estimate_lipschitz(
     step_loss: StepLoss | None = None,
     chunk_size: int = 128,
 ) -> float:
-    """Largest per-example gradient norm on ``batch`` at the current parameters (SCIENCE §4).
+    """Largest per-example gradient norm on ``batch`` at the current parameters (common practice).
 
     A LOWER estimate of the Lipschitz constant L: the true L is a supremum over all examples
     and all parameters the iterates visit, of which this sees one batch at one point.
@@ -612,7 +612,7 @@ def estimate_smoothness(
     seed: int = 0,
     curvature: str = "magnitude",
 ) -> float:
-    """Local curvature of the loss on ``batch`` from its Hessian (SCIENCE §4), an estimate of beta.
+    """Local curvature of the loss on ``batch`` from its Hessian, an estimate of beta.
 
     ``curvature="magnitude"`` (default): the largest |eigenvalue|, i.e. the Hessian's spectral
     norm, which is what beta-smoothness (gradient beta-Lipschitz) bounds and what the non-convex

