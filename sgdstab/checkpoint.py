@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import torch
 
+from .assessment import GroupSettings
 from .history import StepHistory
 from .lockstep import LockstepError, NeighbourSpec
 from .reading import EpochReading
@@ -68,6 +69,9 @@ def tracker_state(tracker: StabilityTracker) -> dict[str, Any]:
         "assumption_violated": tracker._assumption_violated,
         "host_rng_used": tracker.host_rng.used,
         "estimated_constants": None if estimated is None else estimated.to_dict(),
+        "groups": tracker.groups.state_dict(),
+        "loss_seen": tracker.loss_seen,
+        "initial_loss": tracker.initial_loss,
     }
 
 
@@ -123,5 +127,10 @@ def restore_tracker(tracker: StabilityTracker, state: Mapping[str, Any]) -> None
     tracker.host_rng.used = bool(state.get("host_rng_used", False))
     estimated = state["estimated_constants"]
     tracker._estimated = None if estimated is None else Constants.from_dict(estimated)
+    if state.get("groups") is not None:
+        tracker.groups = GroupSettings.from_state_dict(state["groups"])
+    tracker.loss_seen = state.get("loss_seen")
+    tracker.initial_loss = state.get("initial_loss")
     tracker._collate_rows_for = None   # rows are rebuilt from the specs at the next batches()
     tracker._probe = None
+    tracker._holdout = None

@@ -10,13 +10,22 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
 from torch import nn
 
-from .assessment import assumption_breaches, effective_constants, reading_fields, run_bounds
+from .assessment import (
+    GroupSettings,
+    assumption_breaches,
+    effective_constants,
+    groups_reason,
+    loss_bound_reason,
+    reading_fields,
+    run_bounds,
+)
 from .constants import Constants
 from .history import StepHistory
 from .lockstep import Shadow, preserved_rng, squared_distance, trainable_parameters
@@ -28,8 +37,10 @@ if TYPE_CHECKING:
     from .lockstep import PerShadowEngine
 
 __all__ = ["divergences", "divergence", "masked_faults", "default_probe_size", "build_probe",
-           "fresh_replacements", "probe_summary", "settle_audit", "constants_rows",
-           "estimate_constants", "epoch_bounds", "audit_assumptions", "epoch_reading"]
+           "fresh_replacements", "build_holdout", "held_out_summary", "largest_loss",
+           "HeldOutSummary", "probe_summary", "settle_audit", "constants_rows",
+           "estimate_constants", "epoch_bounds", "audit_assumptions", "breach_causes",
+           "epoch_reading"]
 
 
 # -- divergences --------------------------------------------------------------------------------
@@ -142,13 +153,76 @@ def fresh_replacements(shadows: Sequence[Shadow]) -> tuple[bool, str]:
                    "unknown")
 
 
+@dataclass(frozen=True)
+class HeldOutSummary:
+    """The main model on every held-out example not used as a replacement, and this run's gap.
+
+    ``run_gap`` = held-out mean loss - the probe's mean training loss: this run's own
+    generalization gap, an estimate of ``R(A(S)) - R_S(A(S))`` for this ``S``, with a 95 %
+    normal-approximation interval from both means' standard errors (common practice). It is a
+    different quantity from the replace-one estimate of the *expected* gap over training sets.
+    """
+
+    count: int
+    loss: float | None
+    stderr: float | None
+    run_gap: float | None
+    run_gap_low: float | None
+    run_gap_high: float | None
+
+
+def build_holdout(shadows: Sequence[Shadow], replacements: Any,
+                  collate: Callable[[list[Any]], Any]) -> ProbeRows | None:
+    """Every replacement-set example that no shadow swapped in (None without a held-out set)."""
+    if replacements is None or not fresh_replacements(shadows)[0]:
+        return None
+    used = {s.spec.source_index for s in shadows}
+    rows = [j for j in range(len(replacements)) if j not in used]
+    if not rows:
+        return None
+    with preserved_rng():
+        examples = [replacements[j] for j in rows]
+    return ProbeRows.build(examples, ["holdout"] * len(rows), [-1] * len(rows), collate)
+
+
+def _mean_and_error(values: np.ndarray) -> tuple[float | None, float | None]:
+    finite = values[np.isfinite(values)]
+    if not finite.size:
+        return None, None
+    error = float(finite.std(ddof=1) / math.sqrt(finite.size)) if finite.size > 1 else None
+    return float(finite.mean()), error
+
+
+def held_out_summary(losses: np.ndarray | None, train_losses: np.ndarray) -> HeldOutSummary:
+    """Summarise the main model's held-out losses against its training-probe losses."""
+    if losses is None:
+        return HeldOutSummary(0, None, None, None, None, None)
+    loss, error = _mean_and_error(losses)
+    train, train_error = _mean_and_error(train_losses)
+    if loss is None or train is None:
+        return HeldOutSummary(int(losses.size), loss, error, None, None, None)
+    gap = loss - train
+    if error is None or train_error is None:
+        return HeldOutSummary(int(losses.size), loss, error, gap, None, None)
+    half = 1.959963984540054 * math.hypot(error, train_error)   # normal 97.5 % quantile
+    return HeldOutSummary(int(losses.size), loss, error, gap, gap - half, gap + half)
+
+
+def largest_loss(*arrays: np.ndarray | None) -> float | None:
+    """The largest finite per-example loss among ``arrays`` (None when there is none)."""
+    values = [float(np.max(a[np.isfinite(a)])) for a in arrays
+              if a is not None and np.isfinite(a).any()]
+    return max(values) if values else None
+
+
 def probe_summary(model: nn.Module, engine: PerShadowEngine | BatchedEngine,
                   shadows: Sequence[Shadow], probe: ProbeRows, per_example: PerExampleLoss, *,
-                  has_probe_set: bool) -> ProbeSummary:
+                  has_probe_set: bool) -> tuple[ProbeSummary, np.ndarray, float | None]:
     """Per-example losses of the main run, the reference run (batched engine) and every shadow
     on ``probe``, summarised: loss differences, the gap estimate, train and held-out loss.
 
     A frozen shadow contributes NaN losses; an unforked one has the main (or reference) run's.
+    Also returns the main model's training-row losses and the largest finite per-example loss.
     """
     main_losses = model_losses(model, probe, per_example)
     reference_module = getattr(engine, "reference_module", lambda: None)()
@@ -165,8 +239,10 @@ def probe_summary(model: nn.Module, engine: PerShadowEngine | BatchedEngine,
             shadow_losses.append(base_losses)
     fresh, reason = fresh_replacements(shadows)
     kinds = ("out", "in", "probe") if has_probe_set else ("out", "in", "train", "holdout")
-    return summarise_probe(main_losses, shadow_losses, probe, fresh, reason, kinds,
-                           reference=reference_losses)
+    summary = summarise_probe(main_losses, shadow_losses, probe, fresh, reason, kinds,
+                              reference=reference_losses)
+    train_rows = main_losses[np.isin(probe.kinds, ["out", "train"])]
+    return summary, train_rows, largest_loss(main_losses, reference_losses, *shadow_losses)
 
 
 # -- the null-swap audit ------------------------------------------------------------------------
@@ -215,9 +291,10 @@ def estimate_constants(model: nn.Module, batch: Any, previous: Constants | None,
 
 # -- bounds and the assumption audit ------------------------------------------------------------
 def epoch_bounds(constants: Constants | None, divergence: Sequence[float], notes: list[str], *,
-                 history: StepHistory, n: int, delta: float, optimizer: torch.optim.Optimizer,
+                 history: StepHistory, n: int, delta: float, groups: GroupSettings | None,
                  optimizer_reason: str, model: nn.Module, warned: bool,
-                 category: type[Warning]) -> tuple[dict[str, Any], bool]:
+                 category: type[Warning], loss_seen: float | None = None
+                 ) -> tuple[dict[str, Any], bool]:
     """The reading's bound fields for the run so far, and whether a measured divergence broke
     its pathwise bound this epoch (``category`` warning the first time, unless ``warned``).
 
@@ -227,18 +304,23 @@ def epoch_bounds(constants: Constants | None, divergence: Sequence[float], notes
         notes.append("bounds not computed: no constants given (constants=Constants(...) or "
                      "'estimate')")
         return {}, False
-    effective = effective_constants(constants, optimizer)
-    result = run_bounds(history, n, effective, delta, optimizer_reason)
+    effective = effective_constants(constants, groups)
+    result = run_bounds(history, n, effective, delta, optimizer_reason or groups_reason(groups),
+                        loss_seen)
+    m_reason = loss_bound_reason(effective, loss_seen)
+    if m_reason:
+        notes.append(m_reason)
     if effective.source != "declared":
         notes.append("bounds use ESTIMATED constants (lower estimates of L and beta): they "
                      "are indicative, not certified")
-    violated = audit_assumptions(result, divergence, effective, model, notes, warned, category)
-    return reading_fields(result, effective, violated), violated
+    violated = audit_assumptions(result, divergence, effective, model, notes, warned, category,
+                                 groups)
+    return reading_fields(result, effective, violated, n=n, delta=delta), violated
 
 
 def audit_assumptions(result: Any, divergence: Sequence[float], constants: Constants,
                       model: nn.Module, notes: list[str], warned: bool,
-                      category: type[Warning]) -> bool:
+                      category: type[Warning], groups: GroupSettings | None = None) -> bool:
     """Whether a convex run's measured divergences exceed their pathwise bounds (a note each
     time, a ``category`` warning unless ``warned``). Warns with ``stacklevel=4``, i.e. at the
     caller of the method that called ``epoch_bounds``."""
@@ -252,27 +334,66 @@ def audit_assumptions(result: Any, divergence: Sequence[float], constants: Const
     if not warned:
         warnings.warn(
             "ASSUMPTIONS VIOLATED: a shadow's measured divergence exceeds its pathwise bound ("
-            + "; ".join(broken) + f"). The declared constants (L={constants.lipschitz}, "
-            f"beta={constants.smoothness}, gamma={constants.strong_convexity}) or the "
-            f"{constants.regime} assumption are wrong for this run; its bounds do not hold.",
+            + "; ".join(broken) + "), so this run's bounds do not hold. Likely causes, most "
+            "likely first: " + "; ".join(breach_causes(constants, groups)) + ".",
             category, stacklevel=4)
     return True
+
+
+def breach_causes(constants: Constants, groups: GroupSettings | None) -> list[str]:
+    """The likely causes of a pathwise-bound breach, in the order to check them."""
+    causes = [
+        "(1) the loss given to the tracker is not the per-example loss averaged over the batch "
+        "(a sum-reduced or rescaled loss multiplies the gradient, so L and beta must be "
+        "multiplied too)",
+    ]
+    if groups is not None and groups.several:
+        causes.append(
+            f"(2) the optimizer's parameter groups differ (step-size ratios "
+            f"{list(groups.ratios or ())}, weight decays {list(groups.decays or ())}); the "
+            f"bounds use the per-group rule with beta = {constants.smoothness:.6g} and "
+            f"gamma = {constants.strong_convexity:.6g}: check that every group's parameters "
+            "belong to the declared loss")
+    causes += [
+        f"({len(causes) + 1}) the declared constants are too small for this loss and data "
+        f"(L = {constants.lipschitz:.6g}, beta = {constants.smoothness:.6g}, gamma = "
+        f"{constants.strong_convexity:.6g} after weight decay): e.g. features larger than the "
+        "norm the constants assume",
+        f"({len(causes) + 2}) the loss is not {constants.regime.replace('_', ' ')} in the "
+        "parameters (a hidden layer or a non-convex head makes it non-convex)",
+        f"({len(causes) + 3}) the shadows do not compute the main run's loss (augmentation or "
+        "clipping outside step_loss / before_step; the null-swap audit would show it)",
+    ]
+    return causes
 
 
 # -- the reading --------------------------------------------------------------------------------
 def epoch_reading(epoch: int, steps: int, shadows: Sequence[Shadow], divergence: Sequence[float],
                   audit: float | None, layer: dict[str, float], summary: ProbeSummary,
-                  bound_fields: dict[str, Any], notes: list[str]) -> EpochReading:
-    """Assemble the epoch's reading; a note is added for every frozen shadow."""
+                  bound_fields: dict[str, Any], notes: list[str],
+                  held_out: HeldOutSummary | None = None, trivial_loss: float | None = None,
+                  loss_seen: float | None = None) -> EpochReading:
+    """Assemble the epoch's reading; a note is added for every frozen shadow.
+
+    With ``held_out`` (the full held-out evaluation) its mean replaces the probe's held-out loss.
+    """
     faults = tuple(s.fault for s in shadows)
     for k, fault in enumerate(faults):
         if fault is not None:
             notes.append(f"shadow_{k} frozen: {fault}")
+    held = held_out if held_out is not None and held_out.count else None
     return EpochReading(
         epoch=epoch, steps=steps, divergence=tuple(divergence),
         audit_divergence=audit, layer_divergence=layer,
         loss_difference_max=summary.loss_difference_max,
         loss_difference_mean=summary.loss_difference_mean,
         gap_estimate=summary.gap_estimate, gap_stderr=summary.gap_stderr,
-        train_loss=summary.train_loss, holdout_loss=summary.holdout_loss,
+        train_loss=summary.train_loss,
+        holdout_loss=summary.holdout_loss if held is None else held.loss,
+        holdout_count=0 if held is None else held.count,
+        holdout_stderr=None if held is None else held.stderr,
+        run_gap=None if held is None else held.run_gap,
+        run_gap_low=None if held is None else held.run_gap_low,
+        run_gap_high=None if held is None else held.run_gap_high,
+        trivial_loss=trivial_loss, loss_seen=loss_seen,
         shadow_faults=faults, notes=tuple(notes), **bound_fields)

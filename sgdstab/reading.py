@@ -38,6 +38,13 @@ class EpochReading:
     bounds: Mapping[str, Any] = field(default_factory=dict)
     constants: Mapping[str, Any] | None = None
     assumption_violated: bool = False
+    holdout_count: int = 0
+    holdout_stderr: float | None = None
+    run_gap: float | None = None
+    run_gap_low: float | None = None
+    run_gap_high: float | None = None
+    trivial_loss: float | None = None
+    loss_seen: float | None = None
     shadow_faults: tuple[str | None, ...] = ()
     notes: tuple[str, ...] = ()
 

@@ -16,7 +16,7 @@ from torch.utils.data import DataLoader, Dataset
 from torch.utils.data._utils.collate import default_collate
 
 from . import measure
-from .assessment import optimizer_reason
+from .assessment import GroupSettings, optimizer_reason
 from .constants import Constants
 from .engines import make_engine
 from .history import StepHistory, TimeSpent
@@ -33,7 +33,7 @@ from .lockstep import (
 )
 from .measure import default_probe_size
 from .neighbours import attach_rows, explicit_neighbours, seeded_neighbours
-from .probe import PerExampleLoss, ProbeRows
+from .probe import PerExampleLoss, ProbeRows, model_losses
 from .reading import EpochReading
 from .sinks import RunSinks
 
@@ -134,6 +134,7 @@ class StabilityTracker:
         self.host_rng = HostRngGuard(preserve_host_rng)
         self._estimated: Constants | None = None
         self.optimizer_reason = optimizer_reason(optimizer)
+        self.groups = GroupSettings()   # per-group step-size ratios and decays, step by step
         self._rng = np.random.default_rng(self.seed)
         self.specs = self._neighbour_specs(shadows, swap)
         self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
@@ -153,6 +154,9 @@ class StabilityTracker:
         self._collate: Callable[[list[Any]], Any] = default_collate
         self._collate_rows_for: Any = None
         self._probe: ProbeRows | None = None
+        self._holdout: ProbeRows | None = None   # every held-out example no shadow swapped in
+        self.loss_seen: float | None = None       # the largest per-example loss evaluated so far
+        self.initial_loss: float | None = None    # the mean loss before the first step
         self._per_example = PerExampleLoss(loss_fn, step_loss)
         self._warned: set[str] = set()
         self._assumption_violated = False
@@ -203,6 +207,7 @@ class StabilityTracker:
         attach_rows(self.shadows, self.train_set, collate)
         self._collate_rows_for = collate
         self._probe = None
+        self._holdout = None
 
     # -- the loop -------------------------------------------------------------------------------
     def batches(self, loader: DataLoader) -> Iterator[Any]:
@@ -211,6 +216,8 @@ class StabilityTracker:
         start = clock()
         sibling, recorder = recording_loader(loader, self.train_set)
         self._set_rows(loader.collate_fn)
+        if self.steps == 0 and self.initial_loss is None:
+            self._measure_start()
         spent.recording += clock() - start
         for batch in sibling:
             start = clock()
@@ -264,12 +271,9 @@ class StabilityTracker:
             return 0.0
         stepping = self._run_engine(group) if self.engine.shadows else 0.0
         drawn = self._drawn_indices(group)
-        rates = {float(g["lr"]) for g in optimizer.param_groups}
-        if len(rates) > 1:
-            self._warn_once("lrs", "parameter groups use different step sizes; the bounds use the "
-                            "largest", UserWarning)
+        step_size = self.groups.observe(optimizer.param_groups)
         hit_counts = self._hit_counts(drawn)
-        self.history.record(max(rates), len(drawn), drawn, hit_counts)
+        self.history.record(step_size, len(drawn), drawn, hit_counts)
         self.steps += 1
         return stepping
 
@@ -341,25 +345,75 @@ class StabilityTracker:
                 self.shadows, self.train_set, n=self.n, probe_set=self.probe_set,
                 replacements=self.replacements, size=self.probe_size, seed=self.seed,
                 collate=self._collate)
-        summary = measure.probe_summary(self.model, self.engine, self.shadows, self._probe,
-                                        self._per_example, has_probe_set=self.probe_set is not None)
+        summary, train_losses, largest = measure.probe_summary(
+            self.model, self.engine, self.shadows, self._probe, self._per_example,
+            has_probe_set=self.probe_set is not None)
         notes += summary.notes
+        held_out = self._held_out_summary(train_losses)
+        self._see_losses(largest)
         audit = measure.settle_audit(self.engine, self.audit_shadow, audit, notes,
                                      LockstepWarning)
         if audit is not None:   # its verdict is in and the engine dropped it
             self.audit_shadow = None
         bound_fields, violated = measure.epoch_bounds(
             self.current_constants(), divergence, notes, history=self.history, n=self.n,
-            delta=self.delta, optimizer=self.optimizer, optimizer_reason=self.optimizer_reason,
-            model=self.model, warned=self._assumption_violated, category=AssumptionWarning)
+            delta=self.delta, groups=self.groups, optimizer_reason=self.optimizer_reason,
+            model=self.model, warned=self._assumption_violated, category=AssumptionWarning,
+            loss_seen=self.loss_seen)
         self._assumption_violated = self._assumption_violated or violated
         reading = measure.epoch_reading(self.epoch, self.steps, self.shadows, divergence, audit,
-                                        layer, summary, bound_fields, notes)
+                                        layer, summary, bound_fields, notes, held_out,
+                                        self.trivial_loss(), self.loss_seen)
         self.readings.append(reading)
         if self.sinks is not None:
             self.sinks.write(reading)
         self.time_spent.epoch_end += time.perf_counter() - start
         return reading
+
+    def _held_out_rows(self) -> ProbeRows | None:
+        if self._holdout is None:
+            self._holdout = measure.build_holdout(self.shadows, self.replacements, self._collate)
+        return self._holdout
+
+    def _held_out_summary(self, train_losses: np.ndarray) -> measure.HeldOutSummary:
+        """The main model on every held-out example no shadow swapped in, and this run's gap."""
+        rows = self._held_out_rows()
+        losses = None if rows is None else model_losses(self.model, rows, self._per_example)
+        self._see_losses(measure.largest_loss(losses))
+        return measure.held_out_summary(losses, train_losses)
+
+    def _see_losses(self, largest: float | None) -> None:
+        if largest is not None and (self.loss_seen is None or largest > self.loss_seen):
+            self.loss_seen = largest
+
+    def _measure_start(self) -> None:
+        """The model's mean loss before its first step (on the held-out examples, else the
+        training probe): the reference a bound must beat not to be vacuous."""
+        rows = self._held_out_rows()
+        if rows is None:
+            if self._probe is None:
+                self._probe = measure.build_probe(
+                    self.shadows, self.train_set, n=self.n, probe_set=self.probe_set,
+                    replacements=self.replacements, size=self.probe_size, seed=self.seed,
+                    collate=self._collate)
+            rows = self._probe
+            keep = np.isin(rows.kinds, ["out", "train"])
+        else:
+            keep = None
+        losses = model_losses(self.model, rows, self._per_example)
+        if keep is not None:
+            losses = losses[keep]
+        self._see_losses(measure.largest_loss(losses))
+        finite = losses[np.isfinite(losses)]
+        self.initial_loss = float(finite.mean()) if finite.size else None
+
+    def trivial_loss(self) -> float | None:
+        """What a bound must beat to say anything: the smaller of the model's loss before
+        training and the loss bound M (when declared); None when neither is known."""
+        constants = self.declared_constants
+        bound = constants.loss_bound if constants is not None else self.loss_bound
+        known = [v for v in (self.initial_loss, bound) if v is not None]
+        return min(known) if known else None
 
     def _divergences(self) -> tuple[list[float], dict[str, float], float | None]:
         """The shadows' and the audit's divergences (a data-parallel tracker compares ranks')."""

@@ -152,7 +152,7 @@ def test_without_constants_the_bounds_are_skipped_with_a_note():
     notes: list[str] = []
     fields, violated = measure.epoch_bounds(
         None, [0.0], notes, history=StepHistory(shadows=1), n=96, delta=0.05,
-        optimizer=tracker.optimizer, optimizer_reason="", model=tracker.model, warned=False,
+        groups=None, optimizer_reason="", model=tracker.model, warned=False,
         category=UserWarning)
     assert fields == {} and violated is False
     assert notes and notes[0].startswith("bounds not computed")
