@@ -382,7 +382,8 @@ def high_probability_gap(
 
     two_sided: |R - R_S| <= the same with ln(2/delta). Source: McDiarmid's inequality
     (McDiarmid 1989; derivation below), as used by Bousquet & Elisseeff 2002. Assumes A is
-    beta_n-uniformly stable under replacement of one example, loss in [0, M], i.i.d. sample of size n.
+    beta_n-uniformly stable under replacement of one example, loss in [0, M], i.i.d. sample of
+    size n.
     """
     # Derivation: replacing z_i moves R(A(S)) by <= beta_n and R_S(A(S)) by <= beta_n + M/n, so the
     # gap D has bounded differences c = 2 beta_n + M/n, and |E D| <= beta_n. McDiarmid:

@@ -216,8 +216,6 @@ class StabilityTracker:
         start = clock()
         sibling, recorder = recording_loader(loader, self.train_set)
         self._set_rows(loader.collate_fn)
-        if self.steps == 0 and self.initial_loss is None:
-            self._measure_start()
         spent.recording += clock() - start
         for batch in sibling:
             start = clock()
@@ -230,6 +228,8 @@ class StabilityTracker:
         if not self._checked_batch:
             check_batch_device(batch, next(p for _, p in trainable_parameters(self.model)).device)
             self._checked_batch = True
+        if self.steps == 0 and self.initial_loss is None:
+            self._measure_start()
         if self.audit_shadow is not None and self.audit_shadow.spec.index < 0:
             index = int(indices[0])
             row = select_rows(batch, [0], len(indices))

@@ -10,6 +10,7 @@ import pytest
 
 from sgdstab.advice import (
     CAUTIONS,
+    LABELS,
     StopAdvice,
     TrainingPlan,
     acceleration_epoch,
@@ -33,86 +34,254 @@ def reading(epoch: int, *, steps_per_epoch: int = 10, steps: int | None = None,
             stderr: float | None = None, divergence: tuple[float, ...] = (),
             holdout: float | None = None, high: float | None = None,
             constants: dict | None = None, bounds: dict | None = None,
-            violated: bool = False, notes: tuple[str, ...] = ()) -> EpochReading:
+            violated: bool = False, notes: tuple[str, ...] = (), **more) -> EpochReading:
     """An EpochReading with only the fields a test cares about."""
     return EpochReading(
         epoch=epoch, steps=steps if steps is not None else epoch * steps_per_epoch,
-        divergence=divergence, audit_divergence=None, layer_divergence={},
+        divergence=divergence, audit_divergence=more.pop("audit_divergence", None),
+        layer_divergence={},
         loss_difference_max=None, loss_difference_mean=None, gap_estimate=gap, gap_stderr=stderr,
         train_loss=train, holdout_loss=holdout, expected_bound=bound, high_probability_gap=high,
         bounds=bounds if bounds is not None else (_bounds_dict() if bound is not None else {}),
         constants=constants if constants is not None else (DECLARED if bound is not None
                                                            else None),
-        assumption_violated=violated, notes=notes)
+        assumption_violated=violated, notes=notes, **more)
 
 
 def u_shaped(epochs: int = 20, scale: float = 0.01) -> list[EpochReading]:
-    """train = 1/e, bound = scale * e: the sum 1/e + scale*e is smallest at e = 1/sqrt(scale)."""
-    return [reading(e, train=1.0 / e, bound=scale * e) for e in range(1, epochs + 1)]
+    """train = 1/e, bound = scale * e: the sum 1/e + scale*e is smallest at e = 1/sqrt(scale);
+    the held-out loss 1/e + 0.002 e^2 is smallest elsewhere (at e = 6)."""
+    return [reading(e, train=1.0 / e, bound=scale * e, holdout=1.0 / e + 0.002 * e * e)
+            for e in range(1, epochs + 1)]
 
 
-# -- (a) training loss + expected bound ---------------------------------------------------------
+# -- the suggested stop follows the measured evidence -------------------------------------------
 
-def test_u_shaped_sum_is_minimised_where_calculus_and_numpy_say():
+def test_the_held_out_loss_chooses_and_a_loose_bound_does_not():
     advice = advise(u_shaped())
     epochs = np.arange(1, 21)
-    # numpy: argmin of the same sum computed independently
-    expected = int(epochs[np.argmin(1.0 / epochs + 0.01 * epochs)])
-    # calculus (common practice): d/de (1/e + c e) = 0 at e = 1/sqrt(c) = 10
-    assert expected == 10
-    assert advice.suggested_epoch == expected
-    assert advice.criterion == "bound_risk"
-    assert advice.bound_applies and advice.certified
-    pick = advice.criterion_named("bound_risk")
-    assert pick.value == pytest.approx(0.1 + 0.1)
-    assert "epoch 10" in advice.reason
-    assert advice.epochs_seen == 20
-    assert len(advice.rows) == 20
+    expected = int(epochs[np.argmin(1.0 / epochs + 0.002 * epochs**2)])  # numpy, independent
+    assert expected == 6
+    assert advice.suggested_epoch == expected and advice.criterion == "holdout_loss"
+    # train + bound is smallest at e = 10 (calculus: 1/sqrt(0.01)); it no longer chooses
     assert advice.rows[9].bound_risk == pytest.approx(0.2)
+    assert advice.criterion_named("bound_risk") is None
+    assert advice.criterion_label == LABELS["holdout_loss"]
 
 
-def test_minimum_at_the_last_epoch_says_the_sum_may_still_fall():
-    advice = advise(u_shaped(epochs=6))  # minimum at 10 is beyond the record
-    assert advice.suggested_epoch == 6
-    assert "last recorded epoch" in advice.reason
-
-
-def test_estimated_constants_are_indicative_not_certified():
-    estimated = dict(DECLARED, source="estimated")
-    readings = [reading(e, train=1.0 / e, bound=0.01 * e, constants=estimated)
-                for e in range(1, 15)]
-    advice = advise(readings)
-    assert advice.suggested_epoch == 10
-    assert advice.bound_applies and not advice.certified
-    assert "estimated" in advice.summary()
-    assert "indicative" in advice.reason
+def test_minimum_at_the_last_epoch_says_it_may_still_fall():
+    advice = advise(u_shaped(epochs=4))  # held-out minimum at 6 is beyond the record
+    assert advice.suggested_epoch == 4
+    assert "last recorded epoch" in advice.criterion_named("holdout_loss").reason
 
 
 def test_readings_arrive_in_any_order_and_a_repeated_epoch_keeps_the_last():
     readings = u_shaped()
-    shuffled = readings[::-1] + [reading(3, train=0.0, bound=0.0)]  # a resumed epoch 3
+    shuffled = readings[::-1] + [reading(3, train=0.0, bound=0.0, holdout=0.0)]  # resumed 3
     advice = advise(shuffled)
     assert [r.epoch for r in advice.rows] == list(range(1, 21))
     assert advice.suggested_epoch == 3
 
 
-# -- (b) target ---------------------------------------------------------------------------------
+def test_without_held_out_loss_training_loss_plus_the_gap_estimate_decides():
+    gaps = [0.002 * e * e for e in range(1, 13)]
+    readings = [reading(e, train=1.0 / e, gap=gaps[e - 1], stderr=0.001, bound=0.01 * e)
+                for e in range(1, 13)]
+    advice = advise(readings)
+    epochs = np.arange(1, 13)
+    assert advice.suggested_epoch == int(epochs[np.argmin(1.0 / epochs + 0.002 * epochs**2)])
+    assert advice.criterion == "estimated_risk"
+    assert "an estimate, not a bound" in advice.criterion_named("estimated_risk").reason
 
-def test_target_picks_the_last_epoch_within_it_when_that_is_earlier():
+
+def test_falls_back_to_divergence_acceleration_without_a_gap_estimate():
+    values = [0.1 * e for e in range(1, 7)] + [0.6 + 0.1 * k + 0.05 * k * k for k in range(1, 6)]
+    readings = [reading(e, train=1.0 / e, divergence=(v,),
+                        notes=("bounds not computed: no constants given",
+                               "gap estimate not applicable: duplicates"))
+                for e, v in enumerate(values, start=1)]
+    advice = advise(readings)
+    assert advice.criterion == "divergence_acceleration"
+    assert advice.suggested_epoch == 6
+    assert "no constants" in advice.bound_reason
+
+
+def test_nothing_to_decide_gives_no_suggestion():
+    readings = [reading(e, train=1.0 / e) for e in range(1, 4)]
+    advice = advise(readings)
+    assert advice.suggested_epoch is None and advice.criterion is None
+    assert "No criterion" in advice.reason
+    assert advice.epochs_seen == 3
+
+
+def test_no_readings():
+    advice = advise([])
+    assert advice.suggested_epoch is None
+    assert advice.epochs_seen == 0
+    assert advice.to_dict()["epochs_seen"] == 0
+    assert "No stop suggestion" in advice.summary()
+
+
+# -- the guarantee: beside the stop, never choosing by default ---------------------------------
+
+def test_the_guarantee_is_the_last_epoch_within_the_target():
     advice = advise(u_shaped(), target=0.075)  # bound 0.01 e <= 0.075 up to e = 7
-    assert advice.suggested_epoch == 7
-    assert advice.criterion == "bound_budget"
+    assert advice.guarantee_epoch == 7
+    assert advice.suggested_epoch == 6          # still the held-out loss's choice
+    assert advice.criterion_named("guarantee").epoch == 7
     assert advice.budget.last_epoch_within == 7
-    assert advice.budget.extra_epochs == 0
     assert [r.within_target for r in advice.rows[:8]] == [True] * 7 + [False]
+    assert "Both agree" in advice.reason
 
 
-def test_a_loose_target_leaves_the_bound_criterion_in_charge():
-    advice = advise(u_shaped(), target=1.0)
-    assert advice.suggested_epoch == 10
-    assert advice.criterion == "bound_risk"
-    assert advice.criterion_named("bound_budget").epoch == 20
+def test_follow_guarantee_suggests_the_guarantee_epoch():
+    advice = advise(u_shaped(), target=0.045, follow="guarantee")
+    assert advice.suggested_epoch == 4 and advice.criterion == "guarantee"
 
+
+def test_when_they_disagree_one_sentence_says_which_to_follow():
+    advice = advise(u_shaped(), target=0.035)   # guarantee through 3, held-out minimum at 6
+    assert advice.guarantee_epoch == 3 and advice.suggested_epoch == 6
+    assert advice.reason.startswith("Follow the measured stop, epoch 6")
+    assert "only if you need that guarantee" in advice.reason
+    follow = next(v for v in advice.verdict if v.topic == "Which stop to follow")
+    assert follow.text == advice.reason
+
+
+def test_default_target_is_a_tenth_of_the_trivial_loss():
+    readings = [reading(e, train=1.0 / e, bound=0.02 * e, holdout=1.0 / e,
+                        trivial_loss=1.0986) for e in range(1, 11)]
+    advice = advise(readings)
+    assert advice.target == pytest.approx(0.10986)
+    assert advice.guarantee_epoch == 5          # 0.02 e <= 0.10986 up to e = 5 (by hand)
+    assert "trivial loss 1.099" in advice.target_source
+    assert advice.trivial_loss == pytest.approx(1.0986)
+
+
+def test_target_exceeded_from_the_start_is_said_plainly():
+    advice = advise(u_shaped(), target=0.005)
+    assert advice.criterion_named("guarantee").epoch is None
+    assert advice.guarantee_epoch is None
+    assert advice.budget.last_epoch_within is None
+    assert advice.budget.extra_epochs == 0
+    assert "exceeds the target" in advice.criterion_named("guarantee").reason
+    assert "no stability bound gives a usable guarantee" in advice.reason
+
+
+def test_a_vacuous_bound_never_chooses_and_is_shown_as_vacuous():
+    # trivial loss 1.0: the bound alone is 1 or more at every epoch
+    readings = [reading(e, train=1.0 / (e + 1), bound=1.0 + 0.001 * e, holdout=0.5,
+                        trivial_loss=1.0) for e in range(1, 11)]
+    advice = advise(readings, target=2.0, follow="guarantee")
+    assert all(r.expected_vacuous and r.bound_vacuous for r in advice.rows)
+    guarantee = next(v for v in advice.verdict if v.topic == "Guarantee")
+    assert "vacuous" in guarantee.text
+    # even asked to follow the guarantee, a vacuous bound chooses nothing: the held-out loss does
+    assert advice.guarantee_epoch is None and advice.criterion == "holdout_loss"
+    assert advice.rows[0].within_target is False
+
+
+def test_the_certified_gap_is_the_union_bound_over_the_epochs():
+    n, delta, M, beta_n = 100_000, 0.05, 1.0, 2e-6
+    constants = dict(DECLARED, loss_bound=M)
+    bounds = dict(_bounds_dict(), n=n, delta=delta)
+    readings = [reading(e, train=0.3, bound=0.001 * e, holdout=0.35, constants=constants,
+                        bounds=bounds, uniform_stability=beta_n * e) for e in range(1, 5)]
+    advice = advise(readings, target=10.0)
+    for r, e in zip(advice.rows, range(1, 5)):
+        beta = beta_n * e
+        # McDiarmid (one-sided) at delta / E, E = 4 epochs, written out by hand
+        by_hand = beta + (2 * n * beta + M) * math.sqrt(math.log(4 / delta) / (2 * n))
+        assert r.certified_gap == pytest.approx(by_hand, rel=1e-12)
+        assert r.certified_risk == pytest.approx(0.3 + by_hand, rel=1e-12)
+    assert advice.guarantee_bound.startswith("certified gap bound")
+    assert advice.guarantee_epoch == 4
+
+
+def test_estimated_constants_are_indicative_not_certified():
+    estimated = dict(DECLARED, source="estimated")
+    readings = [reading(e, train=1.0 / e, bound=0.01 * e, constants=estimated, holdout=0.5)
+                for e in range(1, 15)]
+    advice = advise(readings, target=0.5)
+    assert advice.bound_applies and not advice.certified
+    guarantee = next(v for v in advice.verdict if v.topic == "Guarantee")
+    assert "indicative, not certified" in guarantee.text and guarantee.status == "warn"
+    assert "certified" not in guarantee.text.replace("not certified", "")
+
+
+def test_no_bound_applies_says_why():
+    reason = "optimizer is Adam: the bounds are proved for plain SGD"
+    readings = [reading(e, train=1.0 / e, holdout=1.0 / e, bounds=_bounds_dict(False, reason),
+                        constants=DECLARED) for e in range(1, 6)]
+    advice = advise(readings, target=0.1)
+    assert not advice.bound_applies and not advice.certified
+    assert "Adam" in advice.bound_reason
+    assert advice.guarantee_epoch is None
+    assert "Adam" in next(v for v in advice.verdict if v.topic == "Guarantee").text
+
+
+def test_a_violated_assumption_withdraws_the_bound_and_fails_the_verdict():
+    readings = u_shaped()
+    readings[14] = reading(15, train=1 / 15, bound=0.15, violated=True, holdout=0.5,
+                           notes=("assumption audit failed: shadow_0: measured 2 > bound 1",))
+    advice = advise(readings, target=1.0)
+    assert not advice.bound_applies and advice.guarantee_epoch is None
+    assert "pathwise bound" in advice.bound_reason
+    line = next(v for v in advice.verdict if v.topic == "Divergence vs pathwise bound")
+    assert line.status == "fail" and "epoch 15" in line.text and "measured 2 > bound 1" in line.text
+
+
+def test_bad_options_are_refused():
+    with pytest.raises(ValueError):
+        advise(u_shaped(), target=0.0)
+    with pytest.raises(ValueError):
+        advise(u_shaped(), target=float("nan"))
+    with pytest.raises(ValueError):
+        advise(u_shaped(), budget_on="somewhere")
+    with pytest.raises(ValueError):
+        advise(u_shaped(), follow="the bound")
+    with pytest.raises(ValueError):
+        advise(u_shaped(), trivial_loss=-1.0)
+
+
+# -- the verdict's statements match the readings -------------------------------------------------
+
+def test_lockstep_line_reads_the_audit():
+    exact = [reading(1, audit_divergence=0.0, holdout=1.0)]
+    assert advise(exact).verdict[0].status == "ok"
+    broken = [reading(1, audit_divergence=3e-9, holdout=1.0)]
+    line = advise(broken).verdict[0]
+    assert line.status == "fail" and "3.000e-09" in line.text
+    unknown = [reading(1, holdout=1.0, notes=("null-swap audit inconclusive: never drawn",))]
+    assert advise(unknown).verdict[0].status == "warn"
+    assert advise([reading(1, holdout=1.0)]).verdict[0].status == "info"
+
+
+def test_pathwise_line_reports_the_largest_ratio():
+    bounds = _bounds_dict()
+    readings = [reading(e, bound=0.01 * e, holdout=1.0, bounds=bounds,
+                        divergence=(0.1 * e, 0.05 * e), path_bound=(0.5 * e, 0.1 * e))
+                for e in range(1, 4)]
+    line = advise(readings).verdict[1]
+    ratios = [max(0.1 / 0.5, 0.05 / 0.1)]   # 0.5 at every epoch, by hand
+    assert line.status == "ok" and f"{max(ratios):.3g}" in line.text and "6 checks" in line.text
+
+
+def test_the_two_gaps_are_labelled_and_the_shadow_count_is_estimated():
+    last = reading(3, holdout=0.6, gap=0.004, stderr=0.0027, divergence=(0.1, 0.2),
+                   run_gap=0.067, run_gap_low=-0.05, run_gap_high=0.19, holdout_count=398)
+    advice = advise([last])
+    # per-shadow spread 0.0027 * sqrt(2); 2 SE < 0.004 needs K >= (2 * spread / 0.004)^2
+    by_hand = math.ceil((2 * 0.0027 * math.sqrt(2) / 0.004) ** 2)
+    assert advice.shadows_needed == by_hand == 4
+    line = next(v for v in advice.verdict if v.topic == "Two different gaps")
+    assert "expected gap over training sets" in line.text and "this run's gap" in line.text
+    assert "[-0.05, 0.19]" in line.text and "398 held-out" in line.text
+    assert "need not agree" in line.text
+
+
+
+# -- the budget projection ---------------------------------------------------------------------
 
 def test_linear_growth_is_extrapolated_exactly():
     readings = u_shaped(epochs=5)  # bound 0.05 at epoch 5, growing 0.01 per epoch
@@ -139,14 +308,6 @@ def test_a_bound_that_stopped_growing_does_not_bind():
     assert advice.budget.extra_epochs is None
 
 
-def test_target_exceeded_from_the_start_is_said_plainly():
-    advice = advise(u_shaped(), target=0.005)
-    assert advice.criterion_named("bound_budget").epoch is None
-    assert advice.budget.last_epoch_within is None
-    assert advice.budget.extra_epochs == 0
-    assert "cannot be met" in advice.reason
-
-
 def test_single_epoch_cannot_be_extrapolated():
     advice = advise([reading(1, train=0.5, bound=0.01)], target=0.1)
     assert advice.budget.extra_epochs is None
@@ -159,7 +320,7 @@ def test_planner_projection_matches_the_convex_closed_form():
     if not hasattr(bounds, "max_steps"):
         pytest.skip("sgdstab.bounds has no planner yet")
     n, alpha, lipschitz, batch = 500, 0.1, 1.0, 10
-    # Hardt, Recht & Singer 2016 (from memory, SCIENCE.md §2), convex: eps = 2 L^2 alpha T / n
+    # Hardt, Recht & Singer 2016 Thm 3.8 (from memory), convex: eps = 2 L^2 alpha T / n
     readings = [reading(e, steps_per_epoch=50, train=1.0 / e,
                         bound=2 * lipschitz**2 * alpha * 50 * e / n) for e in range(1, 4)]
     target = 0.5
@@ -169,91 +330,6 @@ def test_planner_projection_matches_the_convex_closed_form():
     assert advice.budget.extra_epochs == (allowed_steps - 150) // 50
     # the extrapolation from the same (linear) readings agrees
     assert advise(readings, target=target).budget.extra_epochs == advice.budget.extra_epochs
-
-
-def test_budget_on_the_high_probability_gap():
-    readings = [reading(e, train=1.0 / e, bound=0.001 * e, high=0.1 * e) for e in range(1, 8)]
-    advice = advise(readings, target=0.35, budget_on="high_probability")
-    assert advice.criterion_named("bound_budget").epoch == 3
-    assert advice.budget.bound_name == "high_probability"
-
-
-def test_bad_options_are_refused():
-    with pytest.raises(ValueError):
-        advise(u_shaped(), target=0.0)
-    with pytest.raises(ValueError):
-        advise(u_shaped(), target=float("nan"))
-    with pytest.raises(ValueError):
-        advise(u_shaped(), budget_on="somewhere")
-
-
-# -- not applicable: fall back to the measured criteria ----------------------------------------
-
-def test_no_bound_applies_falls_back_to_the_measured_gap():
-    reason = "optimizer is Adam: the bounds are proved for plain SGD"
-    gaps = [0.002 * e * e for e in range(1, 13)]
-    readings = [reading(e, train=1.0 / e, gap=gaps[e - 1], stderr=0.001,
-                        bounds=_bounds_dict(False, reason), constants=DECLARED)
-                for e in range(1, 13)]
-    advice = advise(readings, target=0.1)
-    epochs = np.arange(1, 13)
-    expected = int(epochs[np.argmin(1.0 / epochs + 0.002 * epochs**2)])  # numpy, independent
-    assert advice.suggested_epoch == expected
-    assert advice.criterion == "measured_risk"
-    assert not advice.bound_applies and not advice.certified
-    assert "Adam" in advice.reason and "Adam" in advice.bound_reason
-    assert advice.criterion_named("bound_risk").epoch is None
-    assert advice.criterion_named("bound_budget").epoch is None
-    assert all(r.bound_risk is None for r in advice.rows)
-
-
-def test_a_violated_assumption_withdraws_the_bound_everywhere():
-    readings = u_shaped()
-    readings[14] = reading(15, train=1 / 15, bound=0.15, violated=True)
-    advice = advise(readings)
-    assert not advice.bound_applies
-    assert "pathwise bound" in advice.bound_reason
-    assert advice.criterion != "bound_risk"
-
-
-def test_falls_back_to_divergence_acceleration_without_a_gap_estimate():
-    values = [0.1 * e for e in range(1, 7)] + [0.6 + 0.1 * k + 0.05 * k * k for k in range(1, 6)]
-    readings = [reading(e, train=1.0 / e, divergence=(v,),
-                        notes=("bounds not computed: no constants given",
-                               "gap estimate not applicable: duplicates"))
-                for e, v in enumerate(values, start=1)]
-    advice = advise(readings)
-    assert advice.criterion == "divergence_acceleration"
-    assert advice.suggested_epoch == 6
-    assert "no constants" in advice.bound_reason
-    assert "duplicates" in advice.criterion_named("measured_risk").reason
-
-
-def test_nothing_to_decide_gives_no_suggestion():
-    readings = [reading(e, train=1.0 / e) for e in range(1, 4)]
-    advice = advise(readings)
-    assert advice.suggested_epoch is None and advice.criterion is None
-    assert "no criterion" in advice.reason
-    assert advice.epochs_seen == 3
-
-
-def test_no_readings():
-    advice = advise([])
-    assert advice.suggested_epoch is None
-    assert advice.epochs_seen == 0
-    assert advice.to_dict()["epochs_seen"] == 0
-    assert "No stop suggestion" in advice.summary()
-
-
-def test_missing_training_loss_skips_those_epochs():
-    readings = u_shaped()
-    readings[9] = reading(10, train=None, bound=0.1)  # the true minimum has no training loss
-    advice = advise(readings)
-    assert advice.rows[9].bound_risk is None
-    epochs = np.array([e for e in range(1, 21) if e != 10])
-    expected = int(epochs[np.argmin(1.0 / epochs + 0.01 * epochs)])  # numpy, without epoch 10
-    assert expected in (9, 11)
-    assert advice.suggested_epoch == expected
 
 
 # -- divergence acceleration --------------------------------------------------------------------
@@ -322,7 +398,7 @@ def test_partial_dicts_are_accepted():
     records = [{"epoch": e, "steps": 10 * e, "train_loss": 1 / e, "gap_estimate": 0.01 * e * e}
                for e in range(1, 8)]
     advice = advise(records)
-    assert advice.criterion == "measured_risk"
+    assert advice.criterion == "estimated_risk"
     epochs = np.arange(1, 8)
     assert advice.suggested_epoch == int(epochs[np.argmin(1 / epochs + 0.01 * epochs**2)])
     with pytest.raises(ValueError):
@@ -342,34 +418,15 @@ def test_to_dict_is_strict_json_and_round_trips():
     assert tuple(data["cautions"]) == CAUTIONS
 
 
-def test_summary_is_short_and_names_the_epoch():
+def test_summary_puts_the_verdict_first_and_the_reprs_are_short():
     advice = advise(u_shaped(), target=0.075)
     text = advice.summary()
-    assert "epoch 7" in text.splitlines()[0]
-    assert "held-out" in text
-    assert len(text.splitlines()) <= 10
-
-
-def test_a_vacuous_bound_does_not_choose_and_the_measured_gap_decides():
-    # loss in [0, 1]; the bound alone is 1 or more: train + bound >= M at every epoch
-    constants = dict(DECLARED, loss_bound=1.0, convex=False, source="estimated")
-    readings = [reading(e, train=1.0 / (e + 1), bound=1.0 + 0.001 * e, gap=0.003 * e * e,
-                        constants=constants) for e in range(1, 11)]
-    advice = advise(readings)
-    assert all(r.bound_vacuous for r in advice.rows)
-    assert advice.criterion_named("bound_risk").epoch is None
-    assert "vacuous" in advice.criterion_named("bound_risk").reason
-    assert advice.criterion == "measured_risk"
-    epochs = np.arange(1, 11)
-    assert advice.suggested_epoch == int(epochs[np.argmin(1 / (epochs + 1) + 0.003 * epochs**2)])
-    assert "vacuous" in advice.reason
-
-
-def test_only_the_non_vacuous_epochs_compete():
-    constants = dict(DECLARED, loss_bound=1.0)
-    bounds = [0.2, 0.3, 0.99, 0.99, 0.99]  # from epoch 3 on, train + bound >= 1
-    readings = [reading(e, train=0.5 - 0.05 * e, bound=b, constants=constants)
-                for e, b in enumerate(bounds, start=1)]
-    advice = advise(readings)
-    assert [r.bound_vacuous for r in advice.rows] == [False, False, True, True, True]
-    assert advice.suggested_epoch == 1  # 0.45 + 0.2 = 0.65 < 0.4 + 0.3 = 0.7
+    assert text.splitlines()[0] == "Verdict:"
+    assert "Suggested stop: epoch 6 of 20" in text
+    assert len(text.splitlines()) <= 16
+    assert str(advice) == text
+    assert len(repr(advice)) < 200 and "suggested_epoch=6" in repr(advice)
+    assert "Suggested stop: epoch 6" in advice._repr_html_()
+    markdown = advice.to_markdown()
+    assert markdown.startswith("**Suggested stop: epoch 6") and "| criterion |" in markdown
+    assert advice.to_dict()["verdict_markdown"] == markdown

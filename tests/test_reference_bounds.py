@@ -20,7 +20,7 @@ def test_convex_closed_form_hand_value():
     bound = bounds.convex_bound([0.1, 0.2, 0.3], 10, 2.0, smoothness=4.0)
     assert bound.applicable
     assert bound.value == pytest.approx(0.48, rel=1e-15)
-    assert "from memory" in bound.source
+    assert "Thm 3.8" in bound.source   # theorem numbering as recalled (from memory)
 
 
 def test_strongly_convex_limit_hand_value():

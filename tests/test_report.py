@@ -159,7 +159,7 @@ def test_html_shows_constants_bounds_and_cautions(run_dir: Path):
 
 def test_a_target_recomputes_the_advice(run_dir: Path, tmp_path: Path):
     text, _ = _parse(write_report(run_dir, out_dir=tmp_path, target=1e-6))
-    assert "cannot be met" in text
+    assert "exceeds the target" in text
     assert (tmp_path / "report.html").is_file()
 
 
@@ -192,7 +192,7 @@ def test_without_advice_json_the_advice_is_computed(tmp_path: Path):
     readings = [_synthetic(e) for e in range(1, 9)]
     _write_history(tmp_path, readings)
     advice = advise(readings)
-    assert advice.criterion == "measured_risk"
+    assert advice.criterion == "holdout_loss"
     text, _ = _parse(write_report(tmp_path))
     assert f"Suggested stop: epoch {advice.suggested_epoch} of 8" in text
     assert "No constants were given" in text
