@@ -95,7 +95,10 @@ def _fmt(value: float | None, digits: int = 4) -> str:
 
 def run_demo(out_dir: str | Path = "sgdstab-demo", epochs: int = 12, shadows: int = 2,
              seed: int = 0, quiet: bool = False, report: bool = True) -> dict[str, Any]:
-    """Train the glaze grader with a tracker; write the run directory; print a short table."""
+    """Train the glaze grader with a tracker; write the run directory; print a short table.
+
+    Returns the readings, the advice, the report's path, the run directory and the model's
+    weights after every epoch (``weights``)."""
     from .tracker import StabilityTracker
 
     stream = sys.stdout
@@ -113,7 +116,7 @@ def run_demo(out_dir: str | Path = "sgdstab-demo", epochs: int = 12, shadows: in
     tracker = StabilityTracker(model, optimizer, train_set=train_set, loss_fn=F.cross_entropy,
                                shadows=shadows, replacements=held_out, log_dir=out,
                                constants=constants, seed=seed)
-    readings = []
+    readings, weights = [], []
     started = time.perf_counter()
     if not quiet:
         stream.write("sgdstab demo: grading glaze tiles (generated data), "
@@ -128,6 +131,7 @@ def run_demo(out_dir: str | Path = "sgdstab-demo", epochs: int = 12, shadows: in
                 optimizer.step()
             schedule.step()
             readings.append(tracker.finish_epoch())
+            weights.append({k: v.detach().clone() for k, v in model.state_dict().items()})
             if not quiet:
                 _progress(epoch, epochs, started, stream)
         advice = _advise(tracker)
@@ -146,7 +150,8 @@ def run_demo(out_dir: str | Path = "sgdstab-demo", epochs: int = 12, shadows: in
                      f"{constants.smoothness:.4g}, convex (declared from the closed form of "
                      "softmax regression). A bound holds only under its stated assumptions and "
                      "is no substitute for held-out evaluation.\n")
-    return {"readings": readings, "advice": advice, "report": report_path, "run_dir": out}
+    return {"readings": readings, "advice": advice, "report": report_path, "run_dir": out,
+            "weights": weights}
 
 
 def _advise(tracker: Any) -> Any:
