@@ -3,8 +3,9 @@
 The schedule (step size, batch size) is stored run-length compressed; each step's drawn indices are
 kept in one growing array of the smallest unsigned integer type that holds them (2 bytes an index
 up to n = 65,536, 4 beyond; each step's share follows from its batch size); shadow hits are
-sparse (step, count) pairs; the optimizer's applicability is kept as the steps at which it changed. The bounds are computed from
-this record by pure functions (``sgdstab.bounds``); nothing here computes.
+sparse (step, count) pairs; the optimizer's applicability is kept as the steps at which it
+changed. The bounds are computed from this record by pure functions (``sgdstab.bounds``);
+nothing here computes.
 
 Growth: the all-index (uniform-stability) bound needs which examples every step drew, so the
 record grows by one small integer per drawn example (an epoch over n examples adds 2n bytes for
