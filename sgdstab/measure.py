@@ -189,6 +189,9 @@ def settle_audit(engine: PerShadowEngine | BatchedEngine, shadow: Shadow | None,
     if not shadow.forked:
         notes.append("null-swap audit inconclusive: its example was never drawn")
         audit = None
+    elif shadow.fault is not None:   # reported when it happened (the main run too, if NaN)
+        notes.append(f"null-swap audit inconclusive: it was frozen ({shadow.fault})")
+        audit = None
     elif audit != 0.0:
         warnings.warn(
             f"LOCKSTEP BROKEN: the null-swap shadow (example {shadow.spec.index} swapped with "
