@@ -36,9 +36,17 @@ def _spec_state(spec: NeighbourSpec) -> dict[str, Any]:
             "source_index": spec.source_index}
 
 
+_SIGNED = {np.dtype(np.uint16): np.int16, np.dtype(np.uint32): np.int32,
+           np.dtype(np.uint64): np.int64}
+
+
 def _history_state(history: StepHistory) -> dict[str, Any]:
+    """The step record with its indices as a tensor of their compact type (unsigned types are
+    saved as the signed type of the same width, bit for bit, and ``indices_dtype`` names it)."""
     state = history.state_dict()
-    state["indices"] = torch.from_numpy(np.ascontiguousarray(state["indices"]))
+    indices = np.ascontiguousarray(state["indices"])
+    state["indices_dtype"] = indices.dtype.name
+    state["indices"] = torch.from_numpy(indices.view(_SIGNED.get(indices.dtype, indices.dtype)))
     state["hits"] = [[list(pair) for pair in pairs] for pairs in state["hits"]]
     return state
 
@@ -54,6 +62,8 @@ def tracker_state(tracker: StabilityTracker) -> dict[str, Any]:
     return {
         "version": STATE_VERSION,
         "n": tracker.n,
+        "train_set_size": tracker.dataset_size,
+        "drawable": None if tracker.drawable is None else torch.from_numpy(tracker.drawable),
         "shadows": len(tracker.shadows),
         "parameter_shapes": _shapes(tracker),
         "engine": engine.name,
@@ -84,6 +94,11 @@ def restore_tracker(tracker: StabilityTracker, state: Mapping[str, Any]) -> None
     """Load ``state`` (from ``tracker_state``) into a freshly built tracker."""
     if state.get("version") != STATE_VERSION:
         raise LockstepError(f"unknown tracker state version {state.get('version')!r}")
+    size = state.get("train_set_size", state["n"])
+    if size != tracker.dataset_size:
+        raise _mismatch("the training-set size len(train_set)", size, tracker.dataset_size)
+    if state.get("drawable") is not None:
+        tracker._set_part(state["drawable"].numpy().astype(np.int64))
     if state["n"] != tracker.n:
         raise _mismatch("the training-set size", state["n"], tracker.n)
     if state["shadows"] != len(tracker.shadows):
@@ -117,7 +132,8 @@ def restore_tracker(tracker: StabilityTracker, state: Mapping[str, Any]) -> None
         tracker.audit_shadow.row = audit["row"]
         engine.load_shadow_state(tracker.audit_shadow, audit["state"])
     history = dict(state["history"])
-    history["indices"] = history["indices"].numpy()
+    history["indices"] = history["indices"].numpy().view(
+        np.dtype(history.get("indices_dtype", "int64")))
     tracker.history = StepHistory.from_state_dict(history)
     tracker.epoch = int(state["epoch"])
     tracker.steps = int(state["steps"])
@@ -134,3 +150,7 @@ def restore_tracker(tracker: StabilityTracker, state: Mapping[str, Any]) -> None
     tracker._collate_rows_for = None   # rows are rebuilt from the specs at the next batches()
     tracker._probe = None
     tracker._holdout = None
+    tracker._sampling_fixed = True   # the next pass must draw from the same examples
+    tracker._step_reason = tracker.history.reasons[-1][1] if tracker.history.reasons else None
+    tracker._steps_at_finish = tracker.steps
+    tracker._passes = 0

@@ -5,7 +5,10 @@ the same dataset, collate function, workers, generator and worker init, whose ba
 the user's one and records each list of indices as it is drawn. Workers prefetch ahead of the loop,
 but batches come back in order, so the recorded lists sit in a FIFO and one is popped per batch.
 The sibling draws its base seed from the same generator (or the global RNG) exactly as the user's
-loader would, so the main run is unchanged.
+loader would, so the main run is unchanged. A loader with ``persistent_workers=True`` draws that
+seed once, when its workers start; its sibling is then kept for the tracker's life and persists
+too, so it draws the seed once as well and its workers' random state carries over the epochs
+exactly as the user's would.
 """
 
 from __future__ import annotations
@@ -20,7 +23,8 @@ from torch.utils.data import DataLoader, Dataset, IterableDataset
 
 from .lockstep import LockstepError
 
-__all__ = ["IndexRecorder", "recording_loader", "check_train_set", "check_batch_device"]
+__all__ = ["IndexRecorder", "recording_loader", "check_train_set", "check_batch_device",
+           "drawable_indices", "check_drawn"]
 
 
 class IndexRecorder:
@@ -52,8 +56,42 @@ def check_train_set(train_set: Any) -> int:
     return len(train_set)
 
 
+def drawable_indices(loader: DataLoader, size: int) -> np.ndarray | None:
+    """The training indices the loader's sampler can draw, when it says so up front (a sampler
+    with an ``indices`` attribute, such as ``SubsetRandomSampler``) and they are not all of
+    ``range(size)``; None otherwise. Indices outside the training set are refused."""
+    sampler = getattr(loader.batch_sampler, "sampler", None)
+    if sampler is None:
+        sampler = getattr(loader, "sampler", None)
+    indices = getattr(sampler, "indices", None)
+    if indices is None:
+        return None
+    try:
+        values = np.unique(np.asarray(list(indices), dtype=np.int64))
+    except (TypeError, ValueError):
+        return None
+    if values.size == 0:
+        raise LockstepError(f"the loader's {type(sampler).__name__} has no indices to draw")
+    check_drawn(values, size)
+    if values.size == size:
+        return None
+    return values
+
+
+def check_drawn(indices: np.ndarray, size: int) -> None:
+    """Refuse indices outside ``[0, size)``: the sampler and ``len(train_set)`` disagree."""
+    if indices.size and (int(indices.min()) < 0 or int(indices.max()) >= size):
+        bad = int(indices.max()) if int(indices.max()) >= size else int(indices.min())
+        raise LockstepError(f"the loader drew training index {bad}, but len(train_set) is "
+                            f"{size}: the sampler and the dataset's __len__ disagree (make "
+                            "__len__ return the number of examples the sampler draws from)")
+
+
 def recording_loader(loader: DataLoader, train_set: Dataset) -> tuple[DataLoader, IndexRecorder]:
-    """A sibling of ``loader`` that yields the same batches and records their indices."""
+    """A sibling of ``loader`` that yields the same batches and records their indices.
+
+    With ``persistent_workers=True`` the caller keeps the sibling for the next passes (see the
+    module docstring) and clears ``recorder.drawn`` before each."""
     if not isinstance(loader, DataLoader):
         raise LockstepError(f"tracker.batches() takes a torch DataLoader, got "
                             f"{type(loader).__name__}")
@@ -82,6 +120,7 @@ def recording_loader(loader: DataLoader, train_set: Dataset) -> tuple[DataLoader
     }
     if loader.num_workers > 0:
         options["prefetch_factor"] = loader.prefetch_factor
+        options["persistent_workers"] = loader.persistent_workers
     return DataLoader(loader.dataset, **options), recorder
 
 

@@ -103,17 +103,21 @@ def default_probe_size(n: int) -> int:
 
 def build_probe(shadows: Sequence[Shadow], train_set: Any, *, n: int, probe_set: Any,
                 replacements: Any, size: int, seed: int,
-                collate: Callable[[list[Any]], Any]) -> ProbeRows:
+                collate: Callable[[list[Any]], Any],
+                drawable: np.ndarray | None = None) -> ProbeRows:
     """The rows every model is evaluated on: each shadow's swapped-out and swapped-in example,
-    then the probe set if given, a seeded sample of ``size`` training examples and, with
+    then the probe set if given, a seeded sample of ``size`` training examples (of the
+    ``drawable`` ones when the sampler draws only those; n is their number) and, with
     ``replacements``, a seeded sample of those."""
     with preserved_rng():   # once for all rows (a dataset may draw random transforms)
-        return _gather_probe(shadows, train_set, n, probe_set, replacements, size, seed, collate)
+        return _gather_probe(shadows, train_set, n, probe_set, replacements, size, seed, collate,
+                             drawable)
 
 
 def _gather_probe(shadows: Sequence[Shadow], train_set: Any, n: int, probe_set: Any,
                   replacements: Any, size: int, seed: int,
-                  collate: Callable[[list[Any]], Any]) -> ProbeRows:
+                  collate: Callable[[list[Any]], Any],
+                  drawable: np.ndarray | None = None) -> ProbeRows:
     examples, kinds, owners = [], [], []
     for k, shadow in enumerate(shadows):
         examples += [train_set[shadow.spec.index], shadow.spec.replacement]
@@ -126,7 +130,7 @@ def _gather_probe(shadows: Sequence[Shadow], train_set: Any, n: int, probe_set: 
             owners.append(-1)
     sample_rng = np.random.default_rng(seed + 1)
     for j in np.sort(sample_rng.choice(n, size=min(size, n), replace=False)):
-        examples.append(train_set[int(j)])
+        examples.append(train_set[int(j if drawable is None else drawable[j])])
         kinds.append("train")
         owners.append(-1)
     if replacements is not None:
@@ -251,7 +255,8 @@ def settle_audit(engine: PerShadowEngine | BatchedEngine, shadow: Shadow | None,
                  ) -> float | None:
     """The null-swap shadow's verdict: a note if its example was never drawn, a ``category``
     warning if it drifted at all. The shadow is then removed from ``engine``; the result is
-    ``audit``, or None (and nothing removed) when there is no audit shadow or value.
+    ``audit``, or None when the audit never ran (its example was never drawn: removed, with the
+    note) or there is no audit shadow or value (nothing removed).
 
     Warns with ``stacklevel=3``: call it straight from the method the user called.
     """
@@ -259,6 +264,10 @@ def settle_audit(engine: PerShadowEngine | BatchedEngine, shadow: Shadow | None,
         return None
     if not shadow.forked:
         notes.append("null-swap audit inconclusive: its example was never drawn")
+        audit = None
+    elif shadow.fault is not None:   # reported when it happened (the main run too, if NaN)
+        notes.append(f"null-swap audit inconclusive: it was frozen ({shadow.fault})")
+        audit = None
     elif audit != 0.0:
         warnings.warn(
             f"LOCKSTEP BROKEN: the null-swap shadow (example {shadow.spec.index} swapped with "

@@ -16,8 +16,9 @@ from typing import Any
 import numpy as np
 import torch
 from torch import nn
+from torch.utils._pytree import tree_flatten, tree_map
 
-from .lockstep import preserved_rng, select_rows
+from .lockstep import LockstepError, preserved_rng, select_rows
 
 __all__ = ["ProbeRows", "ProbeSummary", "PerExampleLoss", "evaluation_mode", "summarise_probe"]
 
@@ -46,13 +47,18 @@ class ProbeRows:
 
 
 class evaluation_mode:
-    """Context: model in eval mode, no grad, RNG untouched; every module's flag restored after."""
+    """Context: model in eval mode, no grad, RNG untouched; every module's flag and every buffer
+    restored after (a module may update buffers in eval mode too, e.g. the observers of
+    quantization-aware training: the evaluation must not change the run)."""
 
     def __init__(self, model: nn.Module) -> None:
         self.model = model
 
     def __enter__(self) -> nn.Module:
         self.flags = [(m, m.training) for m in self.model.modules()]
+        self.buffers = [(module, name, tensor, tensor.detach().clone())
+                        for module in self.model.modules()
+                        for name, tensor in module._buffers.items() if tensor is not None]
         self.no_grad = torch.no_grad()
         self.no_grad.__enter__()
         self.rng = preserved_rng()
@@ -63,28 +69,73 @@ class evaluation_mode:
     def __exit__(self, *exc: object) -> None:
         for module, flag in self.flags:
             module.training = flag
+        with torch.no_grad():
+            for module, name, tensor, saved in self.buffers:
+                module._buffers[name] = tensor   # the very object, if it was reassigned
+                if tensor.shape == saved.shape:
+                    tensor.copy_(saved)
+                else:
+                    tensor.set_(saved)
         self.rng.__exit__(*exc)
         self.no_grad.__exit__(*exc)
 
 
 class PerExampleLoss:
-    """Per-example losses: ``loss_fn(..., reduction="none")`` when it supports it, else a loop."""
+    """Per-example losses for the readings, a chunk of rows at a time.
+
+    With ``loss_fn`` (given alone or alongside ``step_loss``): ``loss_fn(outputs, targets,
+    reduction="none")`` when it supports it, else one row at a time. With ``step_loss`` only:
+    ``step_loss`` on every row at once through ``torch.func.vmap`` (each row seen as a one-row
+    batch), else one row at a time; it is then the training loss, with any augmentation and
+    ``1/accumulate`` factor it applies.
+    """
 
     def __init__(self, loss_fn: Callable[..., torch.Tensor] | None,
                  step_loss: Callable[[nn.Module, Any], torch.Tensor] | None) -> None:
         self.loss_fn = loss_fn
-        self.step_loss = step_loss
+        self.step_loss = None if loss_fn is not None else step_loss
         self.vectorised: bool | None = None if loss_fn is not None else False
+        self.mapped: bool | None = None if self.step_loss is not None else False
 
     def _one(self, model: nn.Module, batch: Any) -> torch.Tensor:
         if self.step_loss is not None:
             return self.step_loss(model, batch)
-        inputs, targets = batch
+        inputs, targets = self._pair(batch)
         return self.loss_fn(model(inputs), targets)
 
+    @staticmethod
+    def _pair(batch: Any) -> tuple[Any, Any]:
+        if not isinstance(batch, (list, tuple)) or len(batch) != 2:
+            raise LockstepError("loss_fn is evaluated on (inputs, targets) batches; for other "
+                                "batch structures give step_loss alone")
+        return batch[0], batch[1]
+
+    def _mapped(self, model: nn.Module, batch: Any, length: int) -> np.ndarray | None:
+        """``step_loss`` on each row as a one-row batch, all rows at once (vmap), or None."""
+        from torch.func import vmap
+
+        def one_row(row: Any) -> torch.Tensor:
+            return self.step_loss(model, tree_map(lambda t: t.unsqueeze(0), row)).reshape(())
+
+        try:
+            leaves = tree_flatten(batch)[0]
+            if not leaves or not all(isinstance(t, torch.Tensor) and t.dim() > 0 and
+                                     t.shape[0] == length for t in leaves):
+                raise TypeError("not a batch of tensors with one row each")
+            losses = vmap(one_row, randomness="different")(batch)
+            ok = isinstance(losses, torch.Tensor) and losses.shape == (length,)
+        except Exception:   # noqa: BLE001 - anything vmap cannot run falls back to the loop
+            ok = False
+        self.mapped = ok
+        return losses.double().cpu().numpy() if ok else None
+
     def __call__(self, model: nn.Module, batch: Any, length: int) -> np.ndarray:
+        if self.mapped is not False:
+            values = self._mapped(model, batch, length)
+            if values is not None:
+                return values
         if self.vectorised is not False:
-            inputs, targets = batch
+            inputs, targets = self._pair(batch)
             try:
                 losses = self.loss_fn(model(inputs), targets, reduction="none")
                 ok = isinstance(losses, torch.Tensor) and losses.dim() >= 1 and \

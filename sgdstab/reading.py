@@ -76,7 +76,9 @@ def json_safe(value: Any) -> Any:
 
 
 def read_history(path: str | Path) -> list[dict[str, Any]]:
-    """Read history.jsonl (a file or a run directory). A damaged line is skipped with a warning."""
+    """Read history.jsonl (a file or a run directory). A damaged line is skipped with a warning;
+    when an epoch appears again (a run resumed from a checkpoint older than its last record),
+    the later records replace the earlier ones from that epoch on, with a warning."""
     path = Path(path)
     if path.is_dir():
         path = path / "history.jsonl"
@@ -87,8 +89,19 @@ def read_history(path: str | Path) -> list[dict[str, Any]]:
         if not line.strip():
             continue
         try:
-            records.append(json.loads(line))
+            record = json.loads(line)
         except json.JSONDecodeError:
             warnings.warn(f"{path}: line {number} is damaged or truncated (an interrupted write?); "
                           "skipped", stacklevel=2)
+            continue
+        epoch = record.get("epoch") if isinstance(record, dict) else None
+        if isinstance(epoch, int):
+            repeated = [r for r in records if isinstance(r, dict) and
+                        isinstance(r.get("epoch"), int) and r["epoch"] >= epoch]
+            if repeated:
+                warnings.warn(f"{path}: line {number} repeats epoch {epoch} (a resumed run); "
+                              f"it replaces {len(repeated)} earlier record(s) from epoch "
+                              f"{epoch} on", stacklevel=2)
+                records = [r for r in records if not any(r is x for x in repeated)]
+        records.append(record)
     return records

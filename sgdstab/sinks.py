@@ -78,18 +78,72 @@ def dashboard_layout(shadows: int) -> dict[str, dict[str, list[Any]]]:
 
 
 class JsonlSink:
-    """Appends one JSON object per line, flushed and fsynced so a crash loses no finished epoch."""
+    """Appends one JSON object per line, flushed and fsynced so a crash loses no finished epoch.
+
+    Each record starts on a fresh line, even after a torn last line (an interrupted write or a
+    full disk), so one damaged line never takes the next record with it. A write that fails
+    (OSError: disk full, quota, a vanished mount) warns and keeps the record in ``pending``;
+    the next ``write`` retries it first, so nothing is lost once the fault clears.
+    """
 
     def __init__(self, path: str | Path) -> None:
         self.path = Path(path)
         self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.pending: list[str] = []
 
-    def write(self, record: Mapping[str, Any]) -> None:
-        line = json.dumps(record, sort_keys=True)
-        with open(self.path, "a", encoding="utf-8") as handle:
-            handle.write(line + "\n")
+    def write(self, record: Mapping[str, Any]) -> bool:
+        """Append ``record`` after any pending ones; True when all of them are on disk."""
+        self.pending.append(json.dumps(record, sort_keys=True))
+        try:
+            while self.pending:
+                self._append(self.pending[0])
+                self.pending.pop(0)
+        except OSError as error:
+            warnings.warn(f"could not write {self.path} ({error}); {len(self.pending)} "
+                          "reading(s) kept in memory, written at the next epoch end; training "
+                          "goes on", UserWarning, stacklevel=4)
+            return False
+        return True
+
+    def _append(self, line: str) -> None:
+        with open(self.path, "ab") as handle:
+            torn = handle.tell() > 0 and not self._ends_with_newline()
+            handle.write((("\n" if torn else "") + line + "\n").encode("utf-8"))
             handle.flush()
             os.fsync(handle.fileno())
+
+    def _ends_with_newline(self) -> bool:
+        with open(self.path, "rb") as handle:
+            handle.seek(-1, os.SEEK_END)
+            return handle.read(1) == b"\n"
+
+    def drop_from(self, epoch: int) -> list[int]:
+        """Remove the records of epochs ``>= epoch`` (a resumed run is about to write them again:
+        the process stopped after writing them but before its checkpoint was saved); returns
+        the epochs removed. The file is replaced atomically."""
+        if not self.path.exists():
+            return []
+        kept, dropped = [], []
+        with open(self.path, encoding="utf-8") as handle:
+            for line in handle.read().split("\n"):
+                if not line.strip():
+                    continue
+                try:
+                    number = json.loads(line).get("epoch")
+                except (json.JSONDecodeError, AttributeError):
+                    number = None
+                if isinstance(number, int) and number >= epoch:
+                    dropped.append(number)
+                else:
+                    kept.append(line)
+        if dropped:
+            spare = self.path.with_name(self.path.name + ".rewrite")
+            with open(spare, "w", encoding="utf-8") as handle:
+                handle.write("".join(line + "\n" for line in kept))
+                handle.flush()
+                os.fsync(handle.fileno())
+            os.replace(spare, self.path)
+        return dropped
 
 
 class TensorBoardSink:
@@ -130,15 +184,21 @@ class RunSinks:
         self.history = JsonlSink(self.log_dir / "history.jsonl")
         self.tensorboard = TensorBoardSink(self.log_dir)
         self._written = False
+        self._last_epoch = 0
 
     def write_run(self, description: Mapping[str, Any]) -> None:
         with open(self.log_dir / "run.json", "w", encoding="utf-8") as handle:
             json.dump(description, handle, indent=2, sort_keys=True)
 
     def write(self, reading: EpochReading) -> None:
+        if reading.epoch <= self._last_epoch:
+            return   # this epoch's reading is written already (finish_epoch called again)
         if not self._written and reading.epoch == 1:
             self._set_aside_old_history()
+        elif not self._written:
+            self._drop_repeated_epochs(reading.epoch)
         self._written = True
+        self._last_epoch = reading.epoch
         self.history.write(reading.to_dict())
         self.tensorboard.write(reading)
 
@@ -154,6 +214,16 @@ class RunSinks:
             warnings.warn(f"{path} held an earlier run's readings; moved to {aside.name}. "
                           "TensorBoard will still show the earlier run's event files in this "
                           "directory: use a new log_dir per run", UserWarning, stacklevel=4)
+
+    def _drop_repeated_epochs(self, epoch: int) -> None:
+        """A resumed run's first epoch is ``epoch``: records from that epoch on came from the
+        interrupted process after its last checkpoint and are written again now."""
+        dropped = self.history.drop_from(epoch)
+        if dropped:
+            warnings.warn(f"{self.history.path} already held epoch(s) "
+                          f"{', '.join(map(str, sorted(set(dropped))))} from after the checkpoint "
+                          "this run resumed from; they are dropped and written again by the "
+                          "resumed run", UserWarning, stacklevel=4)
 
     def write_advice(self, advice: Any) -> None:
         """advice.json in the run directory and the advice's summary as TensorBoard text."""

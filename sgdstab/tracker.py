@@ -12,6 +12,8 @@ from typing import Any
 import numpy as np
 import torch
 from torch import nn
+from torch.nn.parallel import DistributedDataParallel
+from torch.utils._pytree import tree_flatten
 from torch.utils.data import DataLoader, Dataset
 from torch.utils.data._utils.collate import default_collate
 
@@ -20,13 +22,20 @@ from .assessment import GroupSettings, optimizer_reason
 from .constants import Constants
 from .engines import make_engine
 from .history import StepHistory, TimeSpent
-from .loaders import check_batch_device, check_train_set, recording_loader
+from .loaders import (
+    check_batch_device,
+    check_drawn,
+    check_train_set,
+    drawable_indices,
+    recording_loader,
+)
 from .lockstep import (
     HostRngGuard,
     LockstepError,
     NeighbourSpec,
     Shadow,
     StepGroup,
+    parameters_finite,
     preserved_rng,
     select_rows,
     trainable_parameters,
@@ -87,6 +96,12 @@ class StabilityTracker:
     ) -> None:
         if not isinstance(model, nn.Module):
             raise TypeError("model must be a torch.nn.Module")
+        if isinstance(model, DistributedDataParallel):
+            raise LockstepError(
+                "the model is wrapped in DistributedDataParallel: use "
+                "sgdstab.DataParallelStabilityTracker(ddp_model, optimizer, ...) on every rank "
+                "(the plain StabilityTracker would wait forever on the other ranks' gradients)")
+        refuse_unmirrorable_modules(model)
         if not trainable_parameters(model):
             raise ValueError("the model has no trainable parameters (requires_grad=True): there is "
                              "nothing whose stability could be tracked")
@@ -95,12 +110,16 @@ class StabilityTracker:
         if isinstance(optimizer, torch.optim.LBFGS):
             raise LockstepError("LBFGS steps with a closure that re-evaluates the loss; the "
                                 "tracker cannot mirror it")
-        if (loss_fn is None) == (step_loss is None):
-            raise ValueError("give exactly one of loss_fn=(outputs, targets) -> loss or "
-                             "step_loss=(model, batch) -> loss")
+        if loss_fn is None and step_loss is None:
+            raise ValueError("give loss_fn=(outputs, targets) -> loss or "
+                             "step_loss=(model, batch) -> loss (or both: step_loss for the "
+                             "training steps, loss_fn for the clean per-example readings)")
         if not 0.0 < float(delta) < 1.0 or math.isnan(float(delta)):
             raise ValueError(f"delta must lie in (0, 1), got {delta}")
         self.n = check_train_set(train_set)
+        self.dataset_size = self.n   # len(train_set); n is the number of drawable examples
+        self.drawable: np.ndarray | None = None   # set when the sampler draws from a part only
+        self._sampling_fixed = False
         if self.n < 2:
             raise ValueError(f"the training set has {self.n} example(s); neighbouring datasets "
                              "need at least 2")
@@ -115,6 +134,7 @@ class StabilityTracker:
         self.probe_set = probe_set
         self.seed = int(seed)
         self.delta = float(delta)
+        self._probe_size_given = probe_size is not None
         self.probe_size = default_probe_size(self.n) if probe_size is None else int(probe_size)
         if self.probe_size < 1:
             raise ValueError(f"probe_size must be at least 1, got {probe_size}")
@@ -135,7 +155,11 @@ class StabilityTracker:
         self._estimated: Constants | None = None
         self.optimizer_reason = optimizer_reason(optimizer)
         self.groups = GroupSettings()   # per-group step-size ratios and decays, step by step
+        self._step_reason: str | None = None   # as the optimizer's settings were last used
         self._rng = np.random.default_rng(self.seed)
+        self._explicit_swap = swap is not None
+        self._position = np.zeros(0, dtype=np.int64)   # training index -> drawable position
+        self._part_note: str | None = None
         self.specs = self._neighbour_specs(shadows, swap)
         self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
                                   shadows=len(self.specs) + int(bool(audit)))
@@ -161,6 +185,9 @@ class StabilityTracker:
         self._warned: set[str] = set()
         self._assumption_violated = False
         self._checked_batch = False
+        self._passes = 0            # passes over tracker.batches() since the last finish_epoch
+        self._steps_at_finish = 0   # steps taken when finish_epoch last ran
+        self._siblings: dict[int, tuple[DataLoader, DataLoader, Any]] = {}   # persistent
         self.time_spent = TimeSpent()
         self._swapped: np.ndarray | None = None   # the shadows' swapped indices, for hit counts
         self._is_swapped = np.zeros(0, dtype=bool)   # by training index (built with _swapped)
@@ -205,17 +232,105 @@ class StabilityTracker:
             return
         self._collate = collate
         attach_rows(self.shadows, self.train_set, collate)
+        self._check_replacement_types(collate)
         self._collate_rows_for = collate
         self._probe = None
         self._holdout = None
+
+    def _check_replacement_types(self, collate: Callable[[list[Any]], Any]) -> None:
+        """Refuse a replacement whose tensors have other dtypes than the training examples'
+        (a float label where training uses integer labels would be cast silently in the
+        shadows' batches and break the epoch-end evaluation)."""
+        for shadow in self.shadows:
+            own = collate([self._fetch(self.train_set, shadow.spec.index)])
+            mine, theirs = tree_flatten(shadow.row)[0], tree_flatten(own)[0]
+            for leaf, (a, b) in enumerate(zip(mine, theirs)):
+                if isinstance(a, torch.Tensor) and isinstance(b, torch.Tensor) and \
+                        a.dtype != b.dtype:
+                    raise LockstepError(
+                        f"{shadow.label}: the replacement for training example "
+                        f"{shadow.spec.index} holds {a.dtype} where the training examples hold "
+                        f"{b.dtype} (tensor {leaf} of the collated example); the shadow's "
+                        "batches would convert it silently (a float label cut to an integer): "
+                        "give replacements with the training examples' dtypes")
+
+    # -- the part of train_set the sampler draws ------------------------------------------------
+    def _fix_sampling(self, loader: DataLoader) -> None:
+        """n, the swapped examples and the probe follow the part of ``train_set`` the loader's
+        sampler can draw (``SubsetRandomSampler`` and any sampler with ``indices``); fixed by
+        the first pass, and a later loader drawing from another part is refused."""
+        if not isinstance(loader, DataLoader) or loader.batch_sampler is None:
+            return   # recording_loader refuses it with the reason
+        drawable = drawable_indices(loader, self.dataset_size)
+        if self._sampling_fixed:
+            same = drawable is None if self.drawable is None else \
+                drawable is not None and np.array_equal(drawable, self.drawable)
+            if not same:
+                before = self.dataset_size if self.drawable is None else self.drawable.size
+                now = self.dataset_size if drawable is None else drawable.size
+                raise LockstepError(
+                    f"this loader's sampler draws from another part of train_set ({now} "
+                    f"examples) than the run's first pass ({before}): n and the swapped "
+                    "examples were fixed then; draw from the same examples for the whole run")
+            return
+        self._sampling_fixed = True
+        if drawable is None:
+            return
+        self._set_part(drawable)
+        if self._explicit_swap:
+            never = [s.spec.index for s in self.shadows if self._position[s.spec.index] < 0]
+            if never:
+                raise LockstepError(
+                    f"swap indices {never} are never drawn: the loader's sampler draws "
+                    f"{self.n} of the {self.dataset_size} examples of train_set; swap examples "
+                    "it draws")
+        else:
+            part = _Part(self.train_set, drawable)
+            chosen = seeded_neighbours(len(self.shadows), self.n,
+                                       np.random.default_rng(self.seed), self._fetch, part,
+                                       self.replacements)
+            self.specs = [NeighbourSpec(
+                int(drawable[c.index]), c.replacement, c.origin,
+                int(drawable[c.source_index]) if c.origin == "train" else c.source_index)
+                for c in chosen]
+            for shadow, spec in zip(self.shadows, self.specs):
+                shadow.spec = spec
+        self._swapped = None
+        self._collate_rows_for = None
+        self._probe = None
+        self._holdout = None
+        if self.sinks is not None:
+            self.sinks.write_run(self.describe())
+
+    def _set_part(self, drawable: np.ndarray) -> None:
+        """Use only the training indices ``drawable`` (sorted, distinct): n is their number."""
+        if drawable.size < 2:
+            raise LockstepError(f"the loader's sampler draws {drawable.size} example(s); "
+                                "neighbouring datasets need at least 2")
+        self.drawable = drawable
+        self.n = int(drawable.size)
+        self._position = np.full(self.dataset_size, -1, dtype=np.int64)
+        self._position[drawable] = np.arange(self.n)
+        if not self._probe_size_given:
+            self.probe_size = default_probe_size(self.n)
+        self._part_note = (f"n = {self.n}: the loader's sampler draws {self.n} of the "
+                           f"{self.dataset_size} examples of train_set; the bounds, the swapped "
+                           "examples and the probe's training sample use those")
 
     # -- the loop -------------------------------------------------------------------------------
     def batches(self, loader: DataLoader) -> Iterator[Any]:
         """Yield exactly the loader's batches, recording their indices and RNG states."""
         clock, spent = time.perf_counter, self.time_spent
         start = clock()
-        sibling, recorder = recording_loader(loader, self.train_set)
+        self._fix_sampling(loader)
+        sibling, recorder = self._sibling(loader)
         self._set_rows(loader.collate_fn)
+        if self._passes:
+            self._warn_once("passes", "a new pass over tracker.batches() started without "
+                            "finish_epoch() after the last one: epochs are counted by "
+                            "finish_epoch() calls, so the next reading covers both passes",
+                            UserWarning)
+        self._passes += 1
         spent.recording += clock() - start
         for batch in sibling:
             start = clock()
@@ -224,7 +339,23 @@ class StabilityTracker:
             spent.recording += clock() - start
             yield batch
 
+    def _sibling(self, loader: DataLoader) -> tuple[DataLoader, Any]:
+        """The recording sibling of ``loader``: a new one per pass, except for a loader with
+        persistent workers, whose sibling is kept (its workers and seed persist like the
+        user's loader's would)."""
+        if isinstance(loader, DataLoader) and loader.num_workers > 0 and \
+                loader.persistent_workers:
+            kept = self._siblings.get(id(loader))
+            if kept is None or kept[0] is not loader:
+                sibling, recorder = recording_loader(loader, self.train_set)
+                kept = self._siblings[id(loader)] = (loader, sibling, recorder)
+            kept[2].drawn.clear()
+            return kept[1], kept[2]
+        return recording_loader(loader, self.train_set)
+
     def _on_batch(self, batch: Any, indices: np.ndarray) -> None:
+        if indices.size and (indices.max() >= self.dataset_size or indices.min() < 0):
+            check_drawn(indices, self.dataset_size)
         if not self._checked_batch:
             check_batch_device(batch, next(p for _, p in trainable_parameters(self.model)).device)
             self._checked_batch = True
@@ -251,7 +382,14 @@ class StabilityTracker:
             drawn = self._drawn_indices(group)
             for shadow in waiting:
                 if shadow.spec.index in drawn:
-                    self.engine.fork(shadow, self.steps, group.buffers)
+                    try:
+                        self.engine.fork(shadow, self.steps, group.buffers)
+                    except RuntimeError as error:
+                        raise LockstepError(
+                            f"cannot start {shadow.label} as a copy of the main run ({error}); "
+                            "a module whose buffers change shape during training (per-channel "
+                            "observers of quantization-aware training) cannot be mirrored"
+                        ) from error
         self.time_spent.step_hooks += time.perf_counter() - start
 
     def _after_main_step(self, optimizer: torch.optim.Optimizer, args: Any, kwargs: Any) -> None:
@@ -271,8 +409,14 @@ class StabilityTracker:
             return 0.0
         stepping = self._run_engine(group) if self.engine.shadows else 0.0
         drawn = self._drawn_indices(group)
+        reason = optimizer_reason(optimizer)   # the settings as this step used them
+        if reason != self._step_reason:
+            self._step_reason = reason
+            self.history.note_optimizer(self.steps, reason)
         step_size = self.groups.observe(optimizer.param_groups)
         hit_counts = self._hit_counts(drawn)
+        if self.drawable is not None:   # positions among the drawable examples, 0..n-1
+            drawn = self._position[drawn]
         self.history.record(step_size, len(drawn), drawn, hit_counts)
         self.steps += 1
         return stepping
@@ -303,17 +447,23 @@ class StabilityTracker:
         look-up table read decides that, ~2 us, where comparing every pair cost ~13 us)."""
         if self._swapped is None:
             self._swapped = np.fromiter((s.spec.index for s in self.shadows), np.int64)
-            self._is_swapped = np.zeros(self.n, dtype=bool)
+            self._is_swapped = np.zeros(self.dataset_size, dtype=bool)
             self._is_swapped[self._swapped] = True
         if not self.shadows or not self._is_swapped[drawn].any():
             return [0] * len(self.shadows)
         return (drawn[:, None] == self._swapped[None, :]).sum(axis=0).tolist()
 
     def _report_faults(self, faulted: list[Shadow]) -> None:
+        if not faulted:
+            return
+        if parameters_finite([p for _, p in trainable_parameters(self.model)]):
+            tail = "it is frozen and marked, the other shadows and the main run go on"
+        else:
+            tail = ("it is frozen and marked. YOUR MAIN RUN's parameters are not finite either: "
+                    "your training itself went NaN/inf, and the shadows only followed it")
         for shadow in faulted:
             warnings.warn(f"{shadow.label} (swapping index {shadow.spec.index}): "
-                          f"{shadow.fault}; it is frozen and marked, the other shadows and the "
-                          "main run go on", ShadowFaultWarning, stacklevel=4)
+                          f"{shadow.fault}; {tail}", ShadowFaultWarning, stacklevel=4)
 
     def _drawn_indices(self, group: StepGroup) -> np.ndarray:
         """Every training index the step used (a data-parallel tracker gathers all ranks')."""
@@ -331,11 +481,24 @@ class StabilityTracker:
     # -- readings -------------------------------------------------------------------------------
     def finish_epoch(self) -> EpochReading:
         """Close the epoch: measure the shadows, compute the bounds, write the sinks."""
+        if self._passes == 0 and self.steps == self._steps_at_finish and self.readings and \
+                not self._group.batches:
+            warnings.warn(f"finish_epoch() called again with no pass over tracker.batches() and "
+                          f"no step since the last call: epoch {self.epoch} is not counted "
+                          "twice; its reading is returned again", UserWarning, stacklevel=2)
+            return self.readings[-1]
         start = time.perf_counter()
-        notes: list[str] = []
+        notes: list[str] = [] if self._part_note is None else [self._part_note]
+        if self._passes > 1:
+            notes.append(f"this epoch spans {self._passes} passes over tracker.batches() "
+                         "(finish_epoch() was not called between them)")
         if self._group.batches:
             notes.append(f"{len(self._group.batches)} batch(es) yielded after the last "
-                         "optimizer.step() belong to no step")
+                         "optimizer.step() were never stepped (a break in the loop?): dropped, "
+                         "the shadows do not replay them")
+            self._group = StepGroup([], [], [])
+        self._passes = 0
+        self._steps_at_finish = self.steps
         self.epoch += 1
         self._report_faults(self.engine.freeze_non_finite(self.shadows, self.steps))
         divergence, layer, audit = self._divergences()
@@ -344,7 +507,7 @@ class StabilityTracker:
             self._probe = measure.build_probe(
                 self.shadows, self.train_set, n=self.n, probe_set=self.probe_set,
                 replacements=self.replacements, size=self.probe_size, seed=self.seed,
-                collate=self._collate)
+                collate=self._collate, drawable=self.drawable)
         summary, train_losses, largest = measure.probe_summary(
             self.model, self.engine, self.shadows, self._probe, self._per_example,
             has_probe_set=self.probe_set is not None)
@@ -353,11 +516,11 @@ class StabilityTracker:
         self._see_losses(largest)
         audit = measure.settle_audit(self.engine, self.audit_shadow, audit, notes,
                                      LockstepWarning)
-        if audit is not None:   # its verdict is in and the engine dropped it
-            self.audit_shadow = None
+        if self.audit_shadow is not None and self.audit_shadow not in self.engine.shadows:
+            self.audit_shadow = None   # its verdict is in and the engine dropped it
         bound_fields, violated = measure.epoch_bounds(
             self.current_constants(), divergence, notes, history=self.history, n=self.n,
-            delta=self.delta, groups=self.groups, optimizer_reason=self.optimizer_reason,
+            delta=self.delta, groups=self.groups, optimizer_reason=self._bounds_reason(),
             model=self.model, warned=self._assumption_violated, category=AssumptionWarning,
             loss_seen=self.loss_seen)
         self._assumption_violated = self._assumption_violated or violated
@@ -395,7 +558,7 @@ class StabilityTracker:
                 self._probe = measure.build_probe(
                     self.shadows, self.train_set, n=self.n, probe_set=self.probe_set,
                     replacements=self.replacements, size=self.probe_size, seed=self.seed,
-                    collate=self._collate)
+                    collate=self._collate, drawable=self.drawable)
             rows = self._probe
             keep = np.isin(rows.kinds, ["out", "train"])
         else:
@@ -415,6 +578,13 @@ class StabilityTracker:
         known = [v for v in (self.initial_loss, bound) if v is not None]
         return min(known) if known else None
 
+    def _bounds_reason(self) -> str:
+        """Why the bounds do not apply to the optimizer as the run's steps used it ('' when they
+        do): settings changed after construction (momentum switched on) count from their step."""
+        if not self.history.steps:
+            return self.optimizer_reason
+        return self.history.optimizer_reason()
+
     def _divergences(self) -> tuple[list[float], dict[str, float], float | None]:
         """The shadows' and the audit's divergences (a data-parallel tracker compares ranks')."""
         return measure.divergences(self.engine, self.model, self.shadows, self.audit_shadow)
@@ -430,10 +600,13 @@ class StabilityTracker:
             return self.declared_constants
         if self._estimated is None or (self.epoch - 1) % self.estimate_every == 0:
             chosen = measure.constants_rows(self.n, self.probe_size, self.seed)
+            if self.drawable is not None:
+                chosen = self.drawable[chosen]
             batch = self._collate([self._fetch(self.train_set, j) for j in chosen])
             self._estimated = measure.estimate_constants(
                 self.model, batch, self._estimated, loss_fn=self.loss_fn,
-                step_loss=self.step_loss, loss_bound=self.loss_bound,
+                step_loss=None if self.loss_fn is not None else self.step_loss,
+                loss_bound=self.loss_bound,
                 options=self.estimate_options)
         return self._estimated
 
@@ -473,7 +646,8 @@ class StabilityTracker:
     def describe(self) -> dict[str, Any]:
         """The run's configuration, JSON-friendly (written to run.json)."""
         return {
-            "n": self.n, "shadows": [s.spec.describe() for s in self.shadows],
+            "n": self.n, "train_set_size": self.dataset_size,
+            "shadows": [s.spec.describe() for s in self.shadows],
             "audit": self.audit_shadow is not None, "seed": self.seed, "delta": self.delta,
             "engine": self.engine.name, "lazy_fork": self.lazy_fork,
             "optimizer": type(self.optimizer).__name__,
@@ -487,6 +661,7 @@ class StabilityTracker:
         for handle in self._hooks:
             handle.remove()
         self._hooks = []
+        self._siblings = {}   # lets kept loaders' persistent workers shut down
         if self.sinks is not None:
             self.sinks.close()
 
@@ -495,3 +670,38 @@ class StabilityTracker:
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+class _Part:
+    """The examples ``indices`` of ``dataset``, addressed 0..len-1 (for choosing swaps)."""
+
+    def __init__(self, dataset: Any, indices: np.ndarray) -> None:
+        self.dataset = dataset
+        self.indices = indices
+
+    def __len__(self) -> int:
+        return int(self.indices.size)
+
+    def __getitem__(self, position: int) -> Any:
+        return self.dataset[int(self.indices[position])]
+
+
+_PER_CHANNEL = tuple(getattr(torch, name) for name in (
+    "per_channel_affine", "per_channel_symmetric", "per_channel_affine_float_qparams")
+    if hasattr(torch, name))
+
+
+def refuse_unmirrorable_modules(model: nn.Module) -> None:
+    """Refuse modules the shadows cannot copy: per-channel fake-quantization and observers
+    (quantization-aware training) size their buffers at the first forward pass, so a shadow
+    started from the main run cannot take them over."""
+    for name, module in model.named_modules():
+        if not type(module).__module__.startswith("torch.ao.quantization"):
+            continue
+        if getattr(module, "is_per_channel", False) or \
+                getattr(module, "qscheme", None) in _PER_CHANNEL:
+            raise LockstepError(
+                f"module {name or 'model'} ({type(module).__name__}) quantizes per channel: its "
+                "observer buffers change shape at the first forward pass, so the shadows cannot "
+                "mirror it; use a per-tensor quantization-aware-training configuration (e.g. "
+                "torch.ao.quantization.default_qat_qconfig) while tracking")

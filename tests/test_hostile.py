@@ -116,8 +116,8 @@ def test_refused_models_optimizers_and_counts():
         _make(shadows=97)
     with pytest.raises(ValueError, match="at least 2"):
         _make(data=TensorDataset(torch.zeros(1, 5), torch.zeros(1, dtype=torch.long)))
-    with pytest.raises(ValueError, match="exactly one"):
-        _make(step_loss=lambda m, b: m(b[0]).sum())
+    with pytest.raises(ValueError, match="give loss_fn"):
+        _make(loss_fn=None)
     for delta in (0.0, 1.0, 1.5, float("nan")):
         with pytest.raises(ValueError, match="delta"):
             _make(delta=delta)

@@ -48,7 +48,7 @@ def test_two_workers_prefetching_keeps_indices_in_order_and_the_run_unchanged():
         opt.step()
     recorded = tracker.history.flat_indices()
     assert sorted(recorded.tolist()) == list(range(len(data)))
-    assert torch.equal(torch.cat(seen), data.tensors[0][torch.as_tensor(recorded)])
+    assert torch.equal(torch.cat(seen), data.tensors[0][torch.as_tensor(recorded.astype("int64"))])
 
 
 @pytest.mark.parametrize("batch_size, drop_last", [(1, False), (7, True), (7, False), (200, False)])

@@ -132,7 +132,8 @@ def test_the_audit_verdict_notes_warns_and_drops_the_audit_shadow():
     assert shadow in engine.shadows and notes == []
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        assert measure.settle_audit(engine, shadow, 0.0, notes, LockstepWarning) == 0.0
+        # never forked: the audit never ran, so no value (None), never a reassuring 0.0
+        assert measure.settle_audit(engine, shadow, 0.0, notes, LockstepWarning) is None
     assert notes == ["null-swap audit inconclusive: its example was never drawn"]
     assert shadow not in engine.shadows
 

@@ -359,7 +359,8 @@ def test_time_spent_accounts_for_the_tracker_by_part():
     assert all(part > 0.0 for part in parts)
     assert spent.bookkeeping == pytest.approx(spent.total - spent.shadow_steps)
     assert spent.total < elapsed   # the user's own forward, backward and step are not counted
-    # an epoch-end only call moves epoch_end alone
+    # an epoch-end only call (here a repeated one, which warns) moves no other part
     before = (spent.recording, spent.step_hooks, spent.shadow_steps)
-    tracker.finish_epoch()
+    with pytest.warns(UserWarning, match="called again"):
+        tracker.finish_epoch()
     assert (spent.recording, spent.step_hooks, spent.shadow_steps) == before
