@@ -302,8 +302,11 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
     target_source = "your target"
     if target is None and trivial is not None:
         target = target_fraction * trivial
-        target_source = (f"{target_fraction:g} x the trivial loss {trivial:.4g} (the smaller "
-                         "of the model's loss before training and the loss bound M)")
+        bound = finite_or_none((ordered[-1].constants or {}).get("loss_bound"))
+        what = "the loss bound M" if bound is not None and bound == trivial and \
+            trivial_loss is None else ("your trivial loss" if trivial_loss is not None
+                                       else "the model's mean loss before training")
+        target_source = f"{target_fraction:g} x the trivial loss {trivial:.4g}, {what}"
     table = divergence_matrix(ordered)
     rows = _rows(ordered, table, trivial)
     bound_applies = rows[-1].bound_applies and not any(r.assumption_violated for r in ordered)

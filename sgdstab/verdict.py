@@ -103,20 +103,18 @@ def _guarantee(rows: Sequence[AdviceRow], guarantee: Criterion, bound_name: str,
                            + (f" ({bound_reason})" if bound_reason else "") + ".")
     if target is None:
         return VerdictLine(topic, "info", f"{guarantee.reason}")
-    where = f"target {target:.4g} = {target_source}"
     status = "ok" if guarantee.epoch is not None and (certified or "certified" in bound_name) \
         else "warn"
     vacuous = [r.epoch for r in rows if r.expected_vacuous or r.certified_vacuous]
-    text = f"{guarantee.reason} ({where})"
+    text = f"{guarantee.reason} The target is {target_source}."
     if vacuous:
         text += (f" The bound is vacuous (no better than the trivial loss) from epoch "
                  f"{vacuous[0]} on.")
     if not certified:
         text += " Estimated constants: indicative, not certified."
     elif not bound_name.startswith("certified"):
-        text += (" It bounds the gap expected over training sets, not this run's own; a "
-                 "certified bound on this run's gap needs a convex loss, declared constants and "
-                 "a declared loss bound M.")
+        text += (" This bound is on the gap expected over training sets, not on this run's own "
+                 "(that needs a convex loss, declared constants and a declared loss bound M).")
     return VerdictLine(topic, status, text)
 
 
