@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-__all__ = ["CRITERION_LABELS", "criterion_label"]
+__all__ = ["BOUND_LABELS", "CRITERION_LABELS", "bound_label", "criterion_label"]
 
 #: Stop criteria by internal name (advice.json's ``name``), as a reader would say them.
 CRITERION_LABELS: Mapping[str, str] = {
@@ -25,3 +25,16 @@ def criterion_label(name: str | None, entry: Mapping[str, Any] | Any = None) -> 
     if name is None:
         return "none"
     return CRITERION_LABELS.get(name, name.replace("_", " "))
+
+#: Bounds by their key in a reading's ``bounds``.
+BOUND_LABELS: Mapping[str, str] = {
+    "expected": "expected stability bound",
+    "high_probability": "high-probability gap bound",
+    "uniform_stability": "uniform stability of the seeded run",
+    "path_bound": "pathwise divergence bound",
+}
+
+
+def bound_label(name: str) -> str:
+    """The human label of a bound's key."""
+    return BOUND_LABELS.get(name, name.replace("_", " "))
