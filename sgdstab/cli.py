@@ -49,12 +49,9 @@ def build_parser() -> argparse.ArgumentParser:
         "report", help="write charts and report.html for a run directory",
         description="Write PNG charts and a self-contained report.html for a run directory "
                     "(needs matplotlib: pip install 'sgdstab[report]').")
-    try:
-        from . import cli_report
-    except ImportError:  # pragma: no cover - only while the report module is missing
-        cli_report = None
-    if cli_report is not None:
-        cli_report.configure(report)
+    from . import cli_report
+
+    cli_report.configure(report)
     return parser
 
 

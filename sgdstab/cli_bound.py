@@ -164,7 +164,7 @@ def _print_report(args: argparse.Namespace) -> None:
         print(f"{name} (high-probability gap bound) not shown: at least {smallest:.6g} at every "
               f"epoch, not below M = {args.loss_bound:.6g}; every loss lies in [0, M], so it "
               "says nothing here")
-    reasons = {}
+    reasons: dict[str, str] = {}
     for name, column in columns.items():
         for bound in column:
             if not bound.applicable:

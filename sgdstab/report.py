@@ -144,15 +144,18 @@ BAND_FROM = 7
 def _percentiles(series: Sequence[Sequence[float]]) -> tuple[list[float], list[float],
                                                               list[float]]:
     """Per epoch: the smallest, median and largest finite value over the shadows."""
-    low, middle, high = [], [], []
+    low: list[float] = []
+    middle: list[float] = []
+    high: list[float] = []
     for column in zip(*series):
         finite = sorted(v for v in column if math.isfinite(v))
         if not finite:
-            low.append(math.nan), middle.append(math.nan), high.append(math.nan)
-            continue
+            finite = [math.nan]
         half = len(finite) // 2
         median = finite[half] if len(finite) % 2 else (finite[half - 1] + finite[half]) / 2
-        low.append(finite[0]), middle.append(median), high.append(finite[-1])
+        low.append(finite[0])
+        middle.append(median)
+        high.append(finite[-1])
     return low, middle, high
 
 
@@ -399,8 +402,9 @@ def _constants_section(readings: Sequence[EpochReading], run: Mapping[str, Any])
                  "per-example gradient norm; top Hessian eigenvalue by power iteration), as a "
                  "running maximum over the epochs. These are LOWER, local estimates: the bounds "
                  "built on them are indicative, not certified.</p>")
-    rows = [(name, constants.get(name)) for name in
-            ("lipschitz", "smoothness", "strong_convexity", "loss_bound", "convex")]
+    rows: list[tuple[Any, ...]] = [
+        (name, constants.get(name))
+        for name in ("lipschitz", "smoothness", "strong_convexity", "loss_bound", "convex")]
     if source != "declared":
         first = next((r.constants for r in readings if r.constants), {})
         rows = [(name, first.get(name), value) for name, value in rows]

@@ -12,7 +12,7 @@ import re
 import warnings
 from collections.abc import Iterator, Mapping
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeGuard
 
 from .reading import EpochReading, versioned
 
@@ -30,7 +30,7 @@ BOUNDS_RUN = "bounds"
 STEP_AXES = ("steps", "epoch")
 
 
-def _finite(value: Any) -> bool:
+def _finite(value: Any) -> TypeGuard[float]:
     return isinstance(value, (int, float)) and not isinstance(value, bool) and \
         math.isfinite(float(value))
 
@@ -40,7 +40,7 @@ def scalar_tags(reading: EpochReading, prefix: str = DEFAULT_PREFIX
     """The measured (tag, value) pairs a reading contributes to TensorBoard, grouped by theme.
 
     Non-finite values (a frozen shadow's NaN divergence) are left out."""
-    pairs: list[tuple[str, float | None]] = []
+    pairs: list[tuple[str, Any]] = []
     for k, value in enumerate(reading.divergence):
         pairs.append((f"divergence/shadow_{k}", value))
     pairs.append(("divergence/null_swap_audit", reading.audit_divergence))
@@ -60,7 +60,7 @@ def scalar_tags(reading: EpochReading, prefix: str = DEFAULT_PREFIX
         pairs.append(("gap/holdout_minus_train", reading.holdout_loss - reading.train_loss))
     for tag, value in pairs:
         if _finite(value):
-            yield prefix + tag, float(value)  # type: ignore[arg-type]
+            yield prefix + tag, float(value)
 
 
 def trivial_loss(reading: EpochReading) -> float | None:
@@ -69,9 +69,8 @@ def trivial_loss(reading: EpochReading) -> float | None:
     value = getattr(reading, "trivial_loss", None)
     if _finite(value) and value > 0:
         return float(value)
-    constants = reading.constants or {}
-    value = constants.get("loss_bound")
-    return float(value) if _finite(value) and value > 0 else None
+    bound = (reading.constants or {}).get("loss_bound")
+    return float(bound) if _finite(bound) and bound > 0 else None
 
 
 def bound_tags(reading: EpochReading, prefix: str = DEFAULT_PREFIX
@@ -99,13 +98,13 @@ def bound_tags(reading: EpochReading, prefix: str = DEFAULT_PREFIX
 
     scale = float(lipschitz) if _finite(lipschitz) and lipschitz > 0 else 0.0
     for k, value in enumerate(reading.path_bound):
-        if useful(value, scale):
-            yield f"{prefix}divergence/shadow_{k}", float(value)  # type: ignore[arg-type]
+        if value is not None and useful(value, scale):
+            yield f"{prefix}divergence/shadow_{k}", float(value)
     for tag, value in (("stability/loss_difference_max", reading.uniform_stability),
                        ("stability/loss_difference_mean", reading.expected_bound),
                        ("gap/holdout_minus_train", reading.high_probability_gap)):
-        if useful(value):
-            yield prefix + tag, float(value)  # type: ignore[arg-type]
+        if useful(value) and value is not None:
+            yield prefix + tag, float(value)
 
 
 def dashboard_layout(shadows: int, prefix: str = DEFAULT_PREFIX
