@@ -9,10 +9,16 @@ lines only).
 from __future__ import annotations
 
 import re
-import tomllib
 from pathlib import Path
 
+import pytest
+
 import sgdstab
+
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10: the same parser as a package
+    tomllib = pytest.importorskip("tomli")
 
 ROOT = Path(__file__).resolve().parents[1]
 PYPROJECT = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))
