@@ -295,6 +295,7 @@ th { background: #f3f3f3; }
 figure { margin: 1rem 0; } figcaption { font-size: 0.85rem; color: #555; }
 img { max-width: 100%; }
 .scroll { overflow-x: auto; max-width: 100%; }
+table.numbers td { white-space: nowrap; }
 .verdict { list-style: none; padding: 0; margin: 1rem 0; }
 .verdict li { border-left: 5px solid #888; background: #f4f4f4; padding: 0.4rem 0.8rem;
               margin: 0.3rem 0; }
@@ -328,10 +329,11 @@ def _fmt(value: Any) -> str:
     return _e(value)
 
 
-def _table(header: Sequence[str], rows: Sequence[Sequence[Any]]) -> str:
+def _table(header: Sequence[str], rows: Sequence[Sequence[Any]], css: str = "") -> str:
     head = "".join(f"<th>{_e(h)}</th>" for h in header)
     body = "".join("<tr>" + "".join(f"<td>{_fmt(c)}</td>" for c in row) + "</tr>" for row in rows)
-    return f'<div class="scroll"><table><tr>{head}</tr>{body}</table></div>'
+    kind = f' class="{css}"' if css else ""
+    return f'<div class="scroll"><table{kind}><tr>{head}</tr>{body}</table></div>'
 
 
 def _verdict_section(record: Mapping[str, Any]) -> str:
@@ -475,7 +477,7 @@ def _epoch_table(advice: StopAdvice) -> str:
         rows.append(row)
     if with_target:
         header.append("bound within target")
-    return _table(header, rows)
+    return _table(header, rows, css="numbers")
 
 
 def _notes_section(readings: Sequence[EpochReading]) -> str:

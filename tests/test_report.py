@@ -320,7 +320,7 @@ def test_the_wide_table_scrolls_inside_the_page(run_dir: Path):
     text, _ = _parse(write_report(run_dir))
     assert ".scroll { overflow-x: auto" in text
     table = text[text.index("<h2>Per-epoch table</h2>"):text.index("<h2>Run</h2>")]
-    assert table.count('<div class="scroll"><table>') == 1
+    assert table.count('<div class="scroll"><table class="numbers">') == 1
     assert table.split("</tr>")[0].count("<th>") <= 12
 
 
