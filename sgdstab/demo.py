@@ -150,7 +150,8 @@ def run_demo(out_dir: str | Path = "sgdstab-demo", epochs: int = 12, shadows: in
     if not quiet:
         _print_table(readings, stream)
         stream.write(f"\nRun directory: {out.resolve()}\n")
-        stream.write(f"TensorBoard:   tensorboard --logdir {out.resolve()}\n")
+        stream.write(f"TensorBoard:   tensorboard --logdir {out.resolve()}  (bounds: run "
+                     "'bounds', measured: run '.'; set smoothing to 0)\n")
         if advice is not None:
             _print_advice(advice, stream)
         if report_path is not None:
