@@ -7,10 +7,13 @@ prints a plain aligned table and returns the exit code (0, or 2 for invalid inpu
 from __future__ import annotations
 
 import argparse
+import json
 import math
 import sys
+from typing import Any
 
 from sgdstab import bounds
+from sgdstab.cli_types import number, whole_number
 
 _SOLVE_FOR = ("steps", "step-size", "train-size")
 _TARGET_BOUNDS = ("stability", "high-probability")
@@ -19,44 +22,51 @@ _TARGET_BOUNDS = ("stability", "high-probability")
 def configure(parser: argparse.ArgumentParser) -> None:
     """Add the options of `sgdstab bound` to parser."""
     problem = parser.add_argument_group("the loss and the data")
-    problem.add_argument("--regime", choices=bounds.REGIMES, required=True)
-    problem.add_argument(
-        "--train-size", "-n", type=int, required=True, help="n, number of training examples"
-    )
-    problem.add_argument(
-        "--lipschitz", type=float, required=True, help="L, bound on per-example gradient norms"
-    )
-    problem.add_argument(
-        "--smoothness", type=float, help="beta, Lipschitz constant of the gradient"
-    )
-    problem.add_argument(
-        "--strong-convexity", type=float, default=0.0, help="gamma (strongly_convex regime)"
-    )
-    problem.add_argument("--loss-bound", type=float, help="M: every loss value lies in [0, M]")
+    problem.add_argument("--regime", choices=bounds.REGIMES, required=True,
+                         help="which published bound: the loss is convex, strongly convex or "
+                              "non-convex in the weights (required)")
+    problem.add_argument("--train-size", "-n", type=whole_number(2, " training examples"),
+                         required=True, help="n, the number of training examples (required)")
+    problem.add_argument("--lipschitz", type=number(above=0.0), required=True,
+                         help="L, a bound on every per-example gradient norm (required)")
+    problem.add_argument("--smoothness", type=number(above=0.0), default=None,
+                         help="beta, the Lipschitz constant of the gradient (default: not "
+                              "declared; the convex and strongly convex step-size conditions "
+                              "and the non-convex bound need it)")
+    problem.add_argument("--strong-convexity", type=number(at_least=0.0), default=0.0,
+                         help="gamma, for the strongly_convex regime (default: %(default)s)")
+    problem.add_argument("--loss-bound", type=number(above=0.0), default=None,
+                         help="M: every loss value lies in [0, M] (default: not declared; the "
+                              "high-probability and non-convex bounds need it)")
 
     run = parser.add_argument_group("the planned run")
-    run.add_argument("--schedule", choices=bounds.SCHEDULE_KINDS, default="constant")
-    run.add_argument(
-        "--step-size", type=float, required=True, help="first step size (c for c-over-t: c/t)"
-    )
-    run.add_argument(
-        "--decay-factor", type=float, default=0.1, help="step-decay: multiply by this ..."
-    )
-    run.add_argument(
-        "--decay-interval", type=int, default=30, help="... every this many epochs (step-decay)"
-    )
-    run.add_argument("--epochs", type=int, default=10)
-    run.add_argument("--batch-size", type=int, default=1)
-    run.add_argument("--delta", type=float, default=0.05, help="confidence 1 - delta (high prob.)")
+    run.add_argument("--schedule", choices=bounds.SCHEDULE_KINDS, default="constant",
+                     help="step-size schedule (default: %(default)s)")
+    run.add_argument("--step-size", type=number(above=0.0), required=True,
+                     help="the first step size; for c-over-t the c of c/t (required)")
+    run.add_argument("--decay-factor", type=number(above=0.0, at_most=1.0), default=0.1,
+                     help="step-decay: multiply the step size by this ... (default: %(default)s)")
+    run.add_argument("--decay-interval", type=whole_number(1, " epoch"), default=30,
+                     help="... every this many epochs (default: %(default)s)")
+    run.add_argument("--epochs", type=whole_number(1, " epoch"), default=10,
+                     help="epochs to plan (default: %(default)s)")
+    run.add_argument("--batch-size", type=whole_number(1, " example"), default=1,
+                     help="examples per step (default: %(default)s)")
+    run.add_argument("--delta", type=number(above=0.0, below=1.0), default=0.05,
+                     help="the high-probability bound holds with probability 1 - delta "
+                          "(default: %(default)s)")
 
     plan = parser.add_argument_group("planner")
-    plan.add_argument("--target", type=float, help="largest acceptable bound")
-    plan.add_argument(
-        "--solve-for", choices=_SOLVE_FOR, default="steps", help="quantity the planner answers"
-    )
-    plan.add_argument(
-        "--target-bound", choices=_TARGET_BOUNDS, default="stability", help="bound the target is on"
-    )
+    plan.add_argument("--target", type=number(above=0.0), default=None,
+                      help="largest acceptable bound (default: none, no planner answer)")
+    plan.add_argument("--solve-for", choices=_SOLVE_FOR, default="steps",
+                      help="the quantity the planner answers (default: %(default)s)")
+    plan.add_argument("--target-bound", choices=_TARGET_BOUNDS, default="stability",
+                      help="the bound the target is on (default: %(default)s)")
+
+    out = parser.add_argument_group("output")
+    out.add_argument("--json", action="store_true",
+                     help="print one JSON object instead of the table (default: the table)")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -78,11 +88,14 @@ def _table(rows: list[list[str]]) -> list[str]:
     return ["  ".join(cell.rjust(w) for cell, w in zip(row, widths)).rstrip() for row in rows]
 
 
-def _print_report(args: argparse.Namespace) -> None:
-    if args.epochs < 1 or args.batch_size < 1:
-        raise ValueError("--epochs and --batch-size must be >= 1")
-    if args.decay_interval < 1:
-        raise ValueError("--decay-interval must be >= 1 epoch")
+def _vacuous(column: list[bounds.Bound], loss_bound: float | None) -> bool:
+    """Every applicable value is at least M: the column says nothing (the gap is <= M anyway)."""
+    values = [b.value for b in column if b.applicable and b.value is not None]
+    return loss_bound is not None and bool(values) and all(v >= loss_bound for v in values)
+
+
+def _compute(args: argparse.Namespace) -> dict[str, Any]:
+    """Everything the table and the JSON show."""
     per_epoch = math.ceil(args.train_size / args.batch_size)
     total = args.epochs * per_epoch
     schedule = bounds.Schedule(
@@ -107,12 +120,27 @@ def _print_report(args: argparse.Namespace) -> None:
     high = bounds.planned_bounds(
         horizons, n=args.train_size, schedule=schedule, bound="high_probability", **problem
     )
-    columns = {
-        "stability bound": stability,
-        f"gap w.p. {1 - args.delta:.6g}": high,
-    }
+    columns = {"stability bound": stability, f"gap w.p. {1 - args.delta:.6g}": high}
     if args.regime == "nonconvex" and args.schedule == "c-over-t":
         columns["c/t closed form"] = _closed_form_column(args, horizons)
+    return dict(schedule=schedule, problem=problem, per_epoch=per_epoch, total=total,
+                horizons=horizons, step_sizes=step_sizes, columns=columns)
+
+
+def _print_report(args: argparse.Namespace) -> None:
+    if args.batch_size > args.train_size:
+        raise ValueError(f"--batch-size {args.batch_size} is larger than --train-size "
+                         f"{args.train_size}")
+    plan = _compute(args)
+    if args.json:
+        print(json.dumps(_as_json(args, plan), indent=2))
+        return
+    schedule, horizons, per_epoch = plan["schedule"], plan["horizons"], plan["per_epoch"]
+    columns = dict(plan["columns"])
+    hidden = {name: column for name, column in columns.items()
+              if name.startswith("gap w.p.") and _vacuous(column, args.loss_bound)}
+    for name in hidden:
+        del columns[name]
 
     print(
         f"sgdstab bound: {args.regime}, n = {args.train_size}, L = {args.lipschitz:.6g}, "
@@ -127,10 +155,16 @@ def _print_report(args: argparse.Namespace) -> None:
     rows = [["epoch", "steps", "step size", *columns]]
     for k, steps in enumerate(horizons):
         cells = [_cell(column[k]) for column in columns.values()]
-        rows.append([str(k + 1), str(steps), f"{step_sizes[steps - 1]:.6g}", *cells])
+        rows.append([str(k + 1), str(steps), f"{plan['step_sizes'][steps - 1]:.6g}", *cells])
     print("\n".join(_table(rows)))
 
-    reasons = {}
+    for name, column in hidden.items():
+        smallest = min(b.value for b in column if b.applicable)
+        print()
+        print(f"{name} (high-probability gap bound) not shown: at least {smallest:.6g} at every "
+              f"epoch, not below M = {args.loss_bound:.6g}; every loss lies in [0, M], so it "
+              "says nothing here")
+    reasons: dict[str, str] = {}
     for name, column in columns.items():
         for bound in column:
             if not bound.applicable:
@@ -151,7 +185,42 @@ def _print_report(args: argparse.Namespace) -> None:
             print(f"source: {source}")
     if args.target is not None:
         print()
-        print(_plan(args, schedule, problem, per_epoch, total))
+        print(_plan(args, schedule, plan["problem"], per_epoch, plan["total"]))
+
+
+def _bound_json(bound: bounds.Bound, loss_bound: float | None) -> dict[str, Any]:
+    value = bound.value if bound.applicable and bound.value is not None and \
+        math.isfinite(bound.value) else None
+    return {"value": value, "applicable": bool(bound.applicable),
+            "reason": bound.reason or None, "source": bound.source,
+            "vacuous": None if value is None or loss_bound is None else value >= loss_bound}
+
+
+def _as_json(args: argparse.Namespace, plan: dict[str, Any]) -> dict[str, Any]:
+    from sgdstab import __version__
+
+    keys = {"stability bound": "stability"}
+    names = {name: keys.get(name, "high_probability_gap" if name.startswith("gap w.p.") else
+                            "closed_form_c_over_t") for name in plan["columns"]}
+    epochs = []
+    for k, steps in enumerate(plan["horizons"]):
+        entry: dict[str, Any] = {"epoch": k + 1, "steps": steps,
+                                 "step_size": float(plan["step_sizes"][steps - 1])}
+        for name, column in plan["columns"].items():
+            entry[names[name]] = _bound_json(column[k], args.loss_bound)
+        epochs.append(entry)
+    inputs = {key: value for key, value in vars(args).items()
+              if key not in ("json", "command", "handler") and not callable(value)}
+    result: dict[str, Any] = {
+        "sgdstab_version": __version__,
+        "inputs": inputs,
+        "schedule": plan["schedule"].describe(),
+        "steps_per_epoch": plan["per_epoch"],
+        "epochs": epochs,
+    }
+    if args.target is not None:
+        result["planner"] = _plan_json(args, plan)
+    return result
 
 
 def _declared(value: float | None) -> str:
@@ -175,21 +244,35 @@ def _closed_form_column(args: argparse.Namespace, horizons: list[int]) -> list[b
     ]
 
 
-def _plan(args, schedule, problem, per_epoch: int, total: int) -> str:
+def _solve(args: argparse.Namespace, schedule: Any, problem: dict[str, Any],
+           total: int) -> Any:
     bound = args.target_bound.replace("-", "_")
-    what = f"target {args.target:.6g} on the {args.target_bound} bound"
     if args.solve_for == "steps":
-        answer = bounds.max_steps(
+        return bounds.max_steps(
             args.target, n=args.train_size, schedule=schedule, bound=bound, **problem
         )
-    elif args.solve_for == "step-size":
-        answer = bounds.max_step_size(
+    if args.solve_for == "step-size":
+        return bounds.max_step_size(
             args.target, n=args.train_size, steps=total, schedule=schedule, bound=bound, **problem
         )
-    else:
-        answer = bounds.min_train_size(
-            args.target, steps=total, schedule=schedule, bound=bound, **problem
-        )
+    return bounds.min_train_size(
+        args.target, steps=total, schedule=schedule, bound=bound, **problem
+    )
+
+
+def _plan_json(args: argparse.Namespace, plan: dict[str, Any]) -> dict[str, Any]:
+    answer = _solve(args, plan["schedule"], plan["problem"], plan["total"])
+    return {"target": args.target, "target_bound": args.target_bound,
+            "solve_for": args.solve_for, "applicable": bool(answer.applicable),
+            "unbounded": bool(answer.unbounded), "quantity": answer.quantity,
+            "value": answer.value, "bound_at_value": answer.bound_at_value,
+            "reason": answer.reason or None, "note": answer.note or None}
+
+
+def _plan(args: argparse.Namespace, schedule: Any, problem: dict[str, Any], per_epoch: int,
+          total: int) -> str:
+    what = f"target {args.target:.6g} on the {args.target_bound} bound"
+    answer = _solve(args, schedule, problem, total)
     head = f"planner ({what}): "
     if not answer.applicable:
         return head + f"n/a: {answer.reason}"

@@ -10,12 +10,14 @@ __all__ = ["configure", "run"]
 
 def configure(parser: argparse.ArgumentParser) -> None:
     """Add the report command's arguments to ``parser``."""
+    from .cli_types import number
+
     parser.add_argument("run_dir", help="a run directory (holding history.jsonl)")
     parser.add_argument("--out", default=None,
                         help="where to write the charts and report.html (default: RUN_DIR/report)")
-    parser.add_argument("--target", type=float, default=None,
+    parser.add_argument("--target", type=number(above=0.0), default=None,
                         help="recompute the stop advice with this budget on the expected "
-                             "stability bound")
+                             "stability bound (default: use the run's advice.json)")
 
 
 def run(args: argparse.Namespace) -> int:

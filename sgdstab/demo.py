@@ -77,14 +77,27 @@ def demo_constants(*datasets: TensorDataset) -> Any:
 
 
 def _progress(epoch: int, epochs: int, started: float, stream: Any) -> None:
+    """A one-line progress bar redrawn in place: only on a terminal (in a file or a notebook
+    the carriage returns would pile up into one long line)."""
+    elapsed = time.perf_counter() - started
+    if not _is_terminal(stream):
+        if epoch == epochs:
+            stream.write(f"  trained {epochs} epochs in {elapsed:.1f} s\n")
+        return
     width = 30
     done = int(width * epoch / epochs)
-    elapsed = time.perf_counter() - started
     stream.write(f"\r  training [{'#' * done}{'.' * (width - done)}] epoch {epoch}/{epochs} "
                  f"({elapsed:5.1f} s)")
     if epoch == epochs:
         stream.write("\n")
     stream.flush()
+
+
+def _is_terminal(stream: Any) -> bool:
+    try:
+        return bool(stream.isatty())
+    except (AttributeError, ValueError):
+        return False
 
 
 def _fmt(value: float | None, digits: int = 4) -> str:
@@ -139,11 +152,12 @@ def run_demo(out_dir: str | Path = "sgdstab-demo", epochs: int = 12, shadows: in
     if report:
         report_path = _report(out)
     if not quiet:
+        if advice is not None:       # the verdict first, then the numbers behind it
+            _print_advice(advice, stream)
         _print_table(readings, stream)
         stream.write(f"\nRun directory: {out.resolve()}\n")
-        stream.write(f"TensorBoard:   tensorboard --logdir {out.resolve()}\n")
-        if advice is not None:
-            stream.write(f"Stop advice:   {advice.summary()}\n")
+        stream.write(f"TensorBoard:   tensorboard --logdir {out.resolve()}  (bounds: run "
+                     "'bounds', measured: run '.'; set smoothing to 0)\n")
         if report_path is not None:
             stream.write(f"Report:        {report_path}\n")
         stream.write(f"Constants: L = {constants.lipschitz:.4g}, beta = "
@@ -173,16 +187,61 @@ def _report(out: Path) -> Path | None:
         return None
 
 
+#: The demo table's columns: (heading, width, what it is).
+COLUMNS = (
+    ("epoch", 5, "epochs finished"),
+    ("steps", 6, "optimizer steps so far"),
+    ("max div.", 9, "largest parameter divergence ||w - w'|| over the shadows"),
+    ("max loss diff.", 14, "largest |f(w;z) - f(w';z)| over the shadows and probe points"),
+    ("gap est.", 9, "replace-one estimate of the expected generalization gap"),
+    ("± s.e.", 7, "its standard error over the shadows"),
+    ("train", 7, "main model's mean loss on the probe's training points"),
+    ("holdout", 7, "main model's mean loss on every held-out tile no shadow swapped in"),
+    ("stab. bound", 11, "expected stability bound eps_stab (Hardt, Recht & Singer 2016, "
+                        "convex case); n/a: not applicable"),
+)
+
+
 def _print_table(readings: list[Any], stream: Any) -> None:
-    header = (f"{'epoch':>5} {'steps':>6} {'max div':>9} {'loss diff':>9} {'gap est':>9} "
-              f"{'+/-':>7} {'train':>7} {'holdout':>7} {'exp. bound':>10}")
+    header = " ".join(f"{name:>{width}}" for name, width, _ in COLUMNS)
     stream.write("\n" + header + "\n" + "-" * len(header) + "\n")
     for r in readings:
-        stream.write(f"{r.epoch:>5} {r.steps:>6} {_fmt(max(r.divergence, default=None)):>9} "
-                     f"{_fmt(r.loss_difference_max):>9} {_fmt(r.gap_estimate):>9} "
-                     f"{_fmt(r.gap_stderr, 2):>7} {_fmt(r.train_loss):>7} "
-                     f"{_fmt(r.holdout_loss):>7} {_fmt(r.expected_bound):>10}\n")
+        cells = (str(r.epoch), str(r.steps), _fmt(max(r.divergence, default=None)),
+                 _fmt(r.loss_difference_max), _fmt(r.gap_estimate), _fmt(r.gap_stderr, 2),
+                 _fmt(r.train_loss), _fmt(r.holdout_loss), _fmt(r.expected_bound))
+        stream.write(" ".join(f"{cell:>{width}}" for cell, (_, width, _) in zip(cells, COLUMNS))
+                     + "\n")
+    stream.write("\n".join(f"  {name:<15} {meaning}" for name, _, meaning in COLUMNS[2:]) + "\n")
     audit = readings[0].audit_divergence if readings else None
     if audit is not None:
         stream.write(f"null-swap audit (epoch 1): divergence {audit!r} "
                      f"({'exact lockstep' if audit == 0.0 else 'LOCKSTEP BROKEN'})\n")
+
+
+def _print_advice(advice: Any, stream: Any) -> None:
+    """The stop advice once: the verdict when the advice has one, else the suggestion and the
+    criteria that did not decide it."""
+    from .labels import criterion_label
+
+    record = advice.to_dict()
+    verdict = record.get("verdict")
+    if isinstance(verdict, list) and verdict:
+        stream.write(f"\n{advice.headline()}\nVerdict:\n")
+        for item in verdict:
+            if isinstance(item, dict):
+                stream.write(f"  [{str(item.get('status', 'info')).upper():4}] "
+                             f"{item.get('topic', '')}: {item.get('text', '')}\n")
+        return
+    if advice.suggested_epoch is None:
+        stream.write(f"Stop advice:   none after {advice.epochs_seen} epochs. {advice.reason}\n")
+    else:
+        chosen = next((c for c in record.get("criteria", ()) if c.get("name") ==
+                       advice.criterion), None)
+        stream.write(f"Stop advice:   epoch {advice.suggested_epoch} of {advice.epochs_seen} "
+                     f"({criterion_label(advice.criterion, chosen)}). {advice.reason}\n")
+    for criterion in record.get("criteria", ()):
+        if criterion.get("name") == advice.criterion:
+            continue
+        where = "no epoch" if criterion.get("epoch") is None else f"epoch {criterion['epoch']}"
+        stream.write(f"  also: {criterion_label(criterion.get('name'), criterion)}: {where}. "
+                     f"{criterion.get('reason', '')}\n")

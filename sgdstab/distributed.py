@@ -28,6 +28,7 @@ from torch.nn.parallel import DistributedDataParallel
 from torch.utils.data import DataLoader, Dataset
 from torch.utils.data.distributed import DistributedSampler
 
+from .loaders import SizedBatches
 from .lockstep import LockstepError, NeighbourSpec, StepGroup, select_rows
 from .reading import EpochReading
 from .tracker import LockstepWarning, StabilityTracker
@@ -281,8 +282,12 @@ class DataParallelStabilityTracker(StabilityTracker):
         return drawn
 
     # -- the loop -----------------------------------------------------------------------------
-    def batches(self, loader: DataLoader) -> Iterator[Any]:
-        """Yield exactly the loader's batches; the ranks first check they will take equal steps."""
+    def batches(self, loader: DataLoader) -> SizedBatches:
+        """Yield exactly the loader's batches; the ranks first check they will take equal steps
+        (``len()`` is the loader's)."""
+        return SizedBatches(self._rank_batches(loader), loader)
+
+    def _rank_batches(self, loader: DataLoader) -> Iterator[Any]:
         try:
             steps = len(loader)
         except TypeError:

@@ -23,8 +23,8 @@ from torch.utils.data import DataLoader, Dataset, IterableDataset
 
 from .lockstep import LockstepError
 
-__all__ = ["IndexRecorder", "recording_loader", "check_train_set", "check_batch_device",
-           "drawable_indices", "check_drawn"]
+__all__ = ["IndexRecorder", "SizedBatches", "recording_loader", "check_train_set",
+           "check_batch_device", "drawable_indices", "check_drawn"]
 
 
 class IndexRecorder:
@@ -41,6 +41,30 @@ class IndexRecorder:
 
     def __len__(self) -> int:
         return len(self.batch_sampler)
+
+
+class SizedBatches:
+    """An iterator over a loader's batches that knows how many there are: ``len()`` is the
+    loader's, so a progress bar (``tqdm(tracker.batches(loader))``) shows its total."""
+
+    def __init__(self, batches: Iterator[Any], loader: Any) -> None:
+        self._batches = batches
+        self._loader = loader
+
+    def __iter__(self) -> SizedBatches:
+        return self
+
+    def __next__(self) -> Any:
+        return next(self._batches)
+
+    def __len__(self) -> int:
+        return len(self._loader)
+
+    def close(self) -> None:
+        """Stop early, like a generator's ``close()``."""
+        close = getattr(self._batches, "close", None)
+        if close is not None:
+            close()
 
 
 def check_train_set(train_set: Any) -> int:

@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Any
 
 from .advice import CAUTIONS, StopAdvice, advise, as_readings
+from .labels import bound_label, criterion_label
 from .reading import EpochReading, read_history
 
 __all__ = ["Chart", "write_report", "REPORT_DIR"]
@@ -113,7 +114,10 @@ class _Canvas:
             self.axes.fill_between(epochs, low, high, **style)
 
     def png(self, stop: int | None, empty: str) -> bytes:
+        from matplotlib.ticker import MaxNLocator
+
         axes = self.axes
+        axes.xaxis.set_major_locator(MaxNLocator(integer=True))   # epochs are whole numbers
         if stop is not None:
             axes.axvline(stop, color="0.3", linestyle=":", linewidth=1.5,
                          label=f"suggested stop (epoch {stop})")
@@ -132,31 +136,97 @@ class _Canvas:
         return buffer.getvalue()
 
 
+#: From this many shadows on, the divergence chart shows a band (min to max) and the median
+#: instead of one line per shadow (more lines than that repeat colours and hide the chart).
+BAND_FROM = 7
+
+
+def _percentiles(series: Sequence[Sequence[float]]) -> tuple[list[float], list[float],
+                                                              list[float]]:
+    """Per epoch: the smallest, median and largest finite value over the shadows."""
+    low: list[float] = []
+    middle: list[float] = []
+    high: list[float] = []
+    for column in zip(*series):
+        finite = sorted(v for v in column if math.isfinite(v))
+        if not finite:
+            finite = [math.nan]
+        half = len(finite) // 2
+        median = finite[half] if len(finite) % 2 else (finite[half - 1] + finite[half]) / 2
+        low.append(finite[0])
+        middle.append(median)
+        high.append(finite[-1])
+    return low, middle, high
+
+
+def _same_for_all(series: Sequence[Sequence[float]]) -> bool:
+    """Every shadow has the same value at every epoch (NaN where missing)."""
+    first = series[0]
+    return all(all((math.isnan(a) and math.isnan(b)) or a == b for a, b in zip(first, other))
+               for other in series[1:])
+
+
+def _divergence_chart(readings: Sequence[EpochReading], epochs: list[int], shadows: int,
+                      stop: int | None) -> Chart:
+    canvas = _Canvas("Parameter divergence and the pathwise bound", "||w - w'||")
+    measured = [[_number(r.divergence[k]) if k < len(r.divergence) else math.nan
+                 for r in readings] for k in range(shadows)]
+    reference = max((v for series in measured for v in series if math.isfinite(v)),
+                    default=math.nan)
+    dropped: list[float] = []
+    bounds = []
+    for k in range(shadows):
+        bound, largest = _clip([_number(r.path_bound[k]) if k < len(r.path_bound) else math.nan
+                                for r in readings], reference)
+        bounds.append(bound)
+        if largest is not None:
+            dropped.append(largest)
+    shared = shadows > 0 and _same_for_all(bounds)
+    banded = shadows >= BAND_FROM
+    if banded:
+        low, middle, high = _percentiles(measured)
+        canvas.band(epochs, low, high, color="C0", alpha=0.25,
+                    label=f"divergence, min to max over {shadows} shadows")
+        canvas.values += [v for v in low + high if math.isfinite(v)]   # for the log scale
+        canvas.line(epochs, middle, color="C0", marker="o", markersize=3,
+                    label="divergence, median over the shadows")
+        what = (f"The measured parameter divergence of {shadows} shadows: the band spans the "
+                "smallest to the largest, the line is the median")
+    else:
+        for k in range(shadows):
+            canvas.line(epochs, measured[k], color=f"C{k % 10}", marker="o", markersize=3,
+                        label=f"shadow {k}")
+        what = "The measured parameter divergence of each shadow (solid)"
+    if shared:
+        canvas.line(epochs, bounds[0], color="black", linestyle="--",
+                    label="pathwise bound (the same for every shadow)")
+        how = ", with the pathwise bound (dashed black), the same for every shadow here."
+    elif banded:
+        low, middle, high = _percentiles(bounds)
+        canvas.band(epochs, low, high, color="C3", alpha=0.12,
+                    label="pathwise bounds, min to max")
+        canvas.values += [v for v in low + high if math.isfinite(v)]
+        canvas.line(epochs, middle, color="C3", linestyle="--",
+                    label="pathwise bound, median over the shadows")
+        how = (", with the shadows' pathwise bounds (red: median dashed, band from the smallest "
+               "to the largest).")
+    else:
+        for k in range(shadows):
+            canvas.line(epochs, bounds[k], color=f"C{k % 10}", linestyle="--")
+        if any(_has(b) for b in bounds):
+            canvas.axes.plot([], [], color="0.4", linestyle="--",
+                             label="pathwise bound (dashed, in its shadow's colour)")
+        how = ", with its pathwise bound (dashed, same colour) where one applies."
+    return Chart("divergence.png", what + how
+                 + _off_chart_note(max(dropped, default=None), "pathwise bounds"),
+                 canvas.png(stop, "no divergence recorded"))
+
+
 def _charts(readings: Sequence[EpochReading], stop: int | None) -> list[Chart]:
     epochs = [r.epoch for r in readings]
     shadows = max((len(r.divergence) for r in readings), default=0)
-    colours = [f"C{k % 10}" for k in range(shadows)]
 
-    canvas = _Canvas("Each shadow's divergence and its pathwise bound", "||w - w'||")
-    measured_all = [[_number(r.divergence[k]) if k < len(r.divergence) else math.nan
-                     for r in readings] for k in range(shadows)]
-    reference = max((v for series in measured_all for v in series if math.isfinite(v)),
-                    default=math.nan)
-    dropped: list[float] = []
-    for k in range(shadows):
-        measured = measured_all[k]
-        bound, largest = _clip([_number(r.path_bound[k]) if k < len(r.path_bound) else math.nan
-                                for r in readings], reference)
-        if largest is not None:
-            dropped.append(largest)
-        canvas.line(epochs, measured, color=colours[k], marker="o", markersize=3,
-                    label=f"shadow {k}")
-        canvas.line(epochs, bound, color=colours[k], linestyle="--", marker="x", markersize=4,
-                    label="pathwise bound (dashed, per shadow)" if k == 0 else None)
-    divergence = Chart("divergence.png", "Measured parameter divergence of each shadow (solid) "
-                       "with its pathwise bound (dashed, same colour) where one applies."
-                       + _off_chart_note(max(dropped, default=None), "pathwise bounds"),
-                       canvas.png(stop, "no divergence recorded"))
+    divergence = _divergence_chart(readings, epochs, shadows, stop)
 
     canvas = _Canvas("Loss difference and the expected stability bound", "loss difference")
     canvas.line(epochs, [_number(r.loss_difference_max) for r in readings], color="C0",
@@ -224,7 +294,25 @@ th { background: #f3f3f3; }
 .no { color: #a33; } .yes { color: #2a6d2a; }
 figure { margin: 1rem 0; } figcaption { font-size: 0.85rem; color: #555; }
 img { max-width: 100%; }
+.scroll { overflow-x: auto; max-width: 100%; }
+table.numbers td { white-space: nowrap; }
+.verdict { list-style: none; padding: 0; margin: 1rem 0; }
+.verdict li { border-left: 5px solid #888; background: #f4f4f4; padding: 0.4rem 0.8rem;
+              margin: 0.3rem 0; }
+.verdict .status { display: inline-block; min-width: 4.5rem; font-weight: bold;
+                   font-size: 0.8rem; }
+.verdict .ok { border-left-color: #2e7d32; background: #edf6ee; }
+.verdict .ok .status { color: #2e7d32; }
+.verdict .warn { border-left-color: #b26a00; background: #fbf3e3; }
+.verdict .warn .status { color: #8a5200; }
+.verdict .fail { border-left-color: #b3261e; background: #fbeceb; }
+.verdict .fail .status { color: #b3261e; }
+.verdict .info { border-left-color: #3b6ea8; background: #eef3f9; }
+.verdict .info .status { color: #3b6ea8; }
 """
+
+#: How each verdict status is written (in words, so colour is never the only cue).
+STATUS_WORDS = {"ok": "OK", "warn": "WARNING", "fail": "FAILED", "info": "NOTE"}
 
 
 def _e(value: Any) -> str:
@@ -241,19 +329,44 @@ def _fmt(value: Any) -> str:
     return _e(value)
 
 
-def _table(header: Sequence[str], rows: Sequence[Sequence[Any]]) -> str:
+def _table(header: Sequence[str], rows: Sequence[Sequence[Any]], css: str = "") -> str:
     head = "".join(f"<th>{_e(h)}</th>" for h in header)
     body = "".join("<tr>" + "".join(f"<td>{_fmt(c)}</td>" for c in row) + "</tr>" for row in rows)
-    return f"<table><tr>{head}</tr>{body}</table>"
+    kind = f' class="{css}"' if css else ""
+    return f'<div class="scroll"><table{kind}><tr>{head}</tr>{body}</table></div>'
 
 
-def _stop_section(advice: StopAdvice) -> str:
+def _verdict_section(record: Mapping[str, Any]) -> str:
+    """advice.json's ``verdict``: one line per topic with its status, at the top of the page."""
+    verdict = record.get("verdict")
+    if not isinstance(verdict, list) or not verdict:
+        return ""
+    items = []
+    for entry in verdict:
+        if not isinstance(entry, Mapping):
+            continue
+        status = str(entry.get("status", "info"))
+        status = status if status in STATUS_WORDS else "info"
+        items.append(f'<li class="{status}"><span class="status">{STATUS_WORDS[status]}</span> '
+                     f"<strong>{_e(entry.get('topic', ''))}</strong>: "
+                     f"{_e(entry.get('text', ''))}</li>")
+    return '<ul class="verdict">' + "".join(items) + "</ul>" if items else ""
+
+
+def _criterion_entries(record: Mapping[str, Any]) -> dict[str, Mapping[str, Any]]:
+    return {str(c.get("name")): c for c in record.get("criteria", ()) or ()
+            if isinstance(c, Mapping)}
+
+
+def _stop_section(advice: StopAdvice, record: Mapping[str, Any]) -> str:
+    entries = _criterion_entries(record)
     if advice.suggested_epoch is None:
         head = f"No stop suggestion after {advice.epochs_seen} epoch(s)."
         box = "stop none"
     else:
+        label = criterion_label(advice.criterion, entries.get(str(advice.criterion)))
         head = (f"Suggested stop: epoch {advice.suggested_epoch} of {advice.epochs_seen} "
-                f"(criterion: {advice.criterion})")
+                f"(criterion: {label})")
         box = "stop"
     kind = ("certified (declared constants)" if advice.certified else
             "indicative (estimated constants)" if advice.bound_applies else
@@ -262,13 +375,14 @@ def _stop_section(advice: StopAdvice) -> str:
              f"<p>Bounds: {_e(kind)}</p></div>",
              "<h2>Stop criteria</h2>",
              _table(["criterion", "epoch", "value", "reason"],
-                    [(c.name, c.epoch, c.value, c.reason) for c in advice.criteria])]
+                    [(criterion_label(c.name, entries.get(c.name)), c.epoch, c.value, c.reason)
+                     for c in advice.criteria])]
     if advice.budget is not None:
         b = advice.budget
         parts.append(_table(
             ["budget on", "target", "last epoch within", "more epochs allowed", "method",
              "projection"],
-            [(b.bound_name, b.target, b.last_epoch_within,
+            [(bound_label(b.bound_name), b.target, b.last_epoch_within,
               "unlimited at this rate" if b.unlimited else b.extra_epochs, b.method, b.reason)]))
     return "\n".join(parts)
 
@@ -290,8 +404,9 @@ def _constants_section(readings: Sequence[EpochReading], run: Mapping[str, Any])
                  "per-example gradient norm; top Hessian eigenvalue by power iteration), as a "
                  "running maximum over the epochs. These are LOWER, local estimates: the bounds "
                  "built on them are indicative, not certified.</p>")
-    rows = [(name, constants.get(name)) for name in
-            ("lipschitz", "smoothness", "strong_convexity", "loss_bound", "convex")]
+    rows: list[tuple[Any, ...]] = [
+        (name, constants.get(name))
+        for name in ("lipschitz", "smoothness", "strong_convexity", "loss_bound", "convex")]
     if source != "declared":
         first = next((r.constants for r in readings if r.constants), {})
         rows = [(name, first.get(name), value) for name, value in rows]
@@ -313,7 +428,7 @@ def _bounds_section(readings: Sequence[EpochReading]) -> str:
     for name, entry in bounds.items():
         if isinstance(entry, Mapping) and "applicable" in entry:
             assumptions = "; ".join(str(a) for a in entry.get("assumptions", ()) or ())
-            rows.append((name.replace("_", " "), bool(entry["applicable"]),
+            rows.append((bound_label(name), bool(entry["applicable"]),
                          entry.get("reason") or "", entry.get("source", ""), assumptions))
     text = [f"<p>As of epoch {last.epoch}; regime: {_e(bounds.get('regime', 'unknown'))}.</p>"]
     text.append(_table(["bound", "applies", "reason if not", "source", "assumptions"], rows))
@@ -338,15 +453,31 @@ def _run_section(run: Mapping[str, Any]) -> str:
                       "replacement index"], shadow_rows))
 
 
+def _with_stderr(value: float | None, stderr: float | None) -> str | None:
+    if value is None:
+        return None
+    return f"{value:.4g}" + ("" if stderr is None else f" \u00b1 {stderr:.2g}")
+
+
 def _epoch_table(advice: StopAdvice) -> str:
-    return _table(
-        ["epoch", "steps", "train", "holdout", "expected bound", "train + bound", "vacuous",
-         "high-probability gap bound", "gap estimate", "stderr", "train + gap",
-         "mean divergence", "divergence per step", "within target"],
-        [(r.epoch, r.steps, r.train_loss, r.holdout_loss, r.expected_bound, r.bound_risk,
-          r.bound_vacuous if r.bound_risk is not None else None, r.high_probability_gap,
-          r.gap_estimate, r.gap_stderr, r.measured_risk, r.mean_divergence, r.divergence_rate,
-          r.within_target) for r in advice.rows])
+    with_target = any(r.within_target is not None for r in advice.rows)
+    header = ["epoch", "steps", "train loss", "holdout loss", "expected stability bound",
+              "train + bound", "high-probability gap bound", "gap estimate \u00b1 s.e.",
+              "train + gap estimate", "mean divergence", "divergence growth per step"]
+    rows = []
+    for r in advice.rows:
+        risk: Any = r.bound_risk
+        if r.bound_risk is not None and r.bound_vacuous:
+            risk = f"{r.bound_risk:.4g} (vacuous)"
+        row = [r.epoch, r.steps, r.train_loss, r.holdout_loss, r.expected_bound, risk,
+               r.high_probability_gap, _with_stderr(r.gap_estimate, r.gap_stderr),
+               r.measured_risk, r.mean_divergence, r.divergence_rate]
+        if with_target:
+            row.append(r.within_target)
+        rows.append(row)
+    if with_target:
+        header.append("bound within target")
+    return _table(header, rows, css="numbers")
 
 
 def _notes_section(readings: Sequence[EpochReading]) -> str:
@@ -359,7 +490,7 @@ def _notes_section(readings: Sequence[EpochReading]) -> str:
     return _table(["first epoch", "note"], [(e, n) for n, e in first_seen.items()])
 
 
-def _page(title: str, advice: StopAdvice, charts: Sequence[Chart],
+def _page(title: str, advice: StopAdvice, record: Mapping[str, Any], charts: Sequence[Chart],
           readings: Sequence[EpochReading], run: Mapping[str, Any], problems: Sequence[str]) -> str:
     figures = "\n".join(
         f'<figure><img alt="{_e(c.caption)}" src="data:image/png;base64,'
@@ -374,7 +505,8 @@ def _page(title: str, advice: StopAdvice, charts: Sequence[Chart],
 <body>
 <h1>{_e(title)}</h1>
 {warnings_html}
-{_stop_section(advice)}
+{_verdict_section(record)}
+{_stop_section(advice, record)}
 <h2>Charts</h2>
 {figures}
 <h2>Constants and where they came from</h2>
@@ -411,7 +543,9 @@ def _load_json(path: Path, problems: list[str]) -> dict[str, Any]:
 
 
 def _advice(run_dir: Path, readings: Sequence[EpochReading], target: float | None,
-            problems: list[str]) -> StopAdvice:
+            problems: list[str]) -> tuple[StopAdvice, dict[str, Any]]:
+    """The advice and its record (advice.json as written, with fields the dataclass may not
+    keep, such as the verdict and the criteria's labels)."""
     saved = None if target is not None else _load_json(run_dir / "advice.json", problems)
     if saved:
         try:
@@ -420,12 +554,13 @@ def _advice(run_dir: Path, readings: Sequence[EpochReading], target: float | Non
             problems.append(f"advice.json is malformed ({error}); the advice was recomputed")
         else:
             if advice.epochs_seen == len(readings):
-                return advice
+                return advice, saved
             problems.append(f"advice.json covers {advice.epochs_seen} epoch(s) but the history "
                             f"has {len(readings)}; the advice was recomputed")
             if advice.budget is not None:
                 target = advice.budget.target
-    return advise(readings, target=target)
+    advice = advise(readings, target=target)
+    return advice, advice.to_dict()
 
 
 def write_report(run_dir: str | Path, *, out_dir: str | Path | None = None,
@@ -452,7 +587,7 @@ def write_report(run_dir: str | Path, *, out_dir: str | Path | None = None,
     if not readings:
         raise ValueError(f"{history} holds no finished epoch")
     run = _load_json(run_dir / "run.json", problems)
-    advice = _advice(run_dir, readings, target, problems)
+    advice, record = _advice(run_dir, readings, target, problems)
     charts = _charts(readings, advice.suggested_epoch)
     out = Path(out_dir) if out_dir is not None else run_dir / REPORT_DIR
     out.mkdir(parents=True, exist_ok=True)
@@ -460,5 +595,5 @@ def write_report(run_dir: str | Path, *, out_dir: str | Path | None = None,
         (out / chart.name).write_bytes(chart.png)
     page = out / "report.html"
     title = f"sgdstab stability report: {run_dir.resolve().name}"
-    page.write_text(_page(title, advice, charts, readings, run, problems), encoding="utf-8")
+    page.write_text(_page(title, advice, record, charts, readings, run, problems), encoding="utf-8")
     return page

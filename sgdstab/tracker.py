@@ -23,6 +23,7 @@ from .constants import Constants
 from .engines import make_engine
 from .history import StepHistory, TimeSpent
 from .loaders import (
+    SizedBatches,
     check_batch_device,
     check_drawn,
     check_train_set,
@@ -318,8 +319,12 @@ class StabilityTracker:
                            "examples and the probe's training sample use those")
 
     # -- the loop -------------------------------------------------------------------------------
-    def batches(self, loader: DataLoader) -> Iterator[Any]:
-        """Yield exactly the loader's batches, recording their indices and RNG states."""
+    def batches(self, loader: DataLoader) -> SizedBatches:
+        """Yield exactly the loader's batches, recording their indices and RNG states
+        (``len()`` is the loader's)."""
+        return SizedBatches(self._tracked_batches(loader), loader)
+
+    def _tracked_batches(self, loader: DataLoader) -> Iterator[Any]:
         clock, spent = time.perf_counter, self.time_spent
         start = clock()
         self._fix_sampling(loader)
@@ -664,6 +669,14 @@ class StabilityTracker:
         self._siblings = {}   # lets kept loaders' persistent workers shut down
         if self.sinks is not None:
             self.sinks.close()
+
+    def __repr__(self) -> str:
+        where = "no log_dir" if self.sinks is None else f"log_dir={str(self.sinks.log_dir)!r}"
+        constants = ("declared constants" if self.declared_constants is not None else
+                     "estimated constants" if self.estimate_constants else "no constants")
+        return (f"<StabilityTracker n={self.n}, {len(self.shadows)} shadows, "
+                f"epoch {self.epoch}, {self.steps} steps, engine {self.engine.name!r}, "
+                f"{constants}, {where}>")
 
     def __enter__(self) -> StabilityTracker:
         return self

@@ -4,6 +4,7 @@
 """
 
 import argparse
+import json
 
 import numpy as np
 import pytest
@@ -61,11 +62,32 @@ def test_convex_planner_answer(capsys):
 
 
 def test_high_probability_column_numbers(capsys):
-    # McDiarmid (SCIENCE.md §3) with eps = 0.02 after epoch 1, n = 1000, M = 1, delta = 0.05:
-    # 0.02 + (2 * 1000 * 0.02 + 1) sqrt(ln(20) / 2000).
-    _, out, _ = _run(CONVEX + ["--loss-bound", "1"], capsys)
-    expected = bounds.high_probability_gap(0.02, 1000, 1.0, 0.05).value
+    # McDiarmid (SCIENCE.md §3) with eps = 0.02 after epoch 1, n = 1000, M = 5, delta = 0.05:
+    # 0.02 + (2 * 1000 * 0.02 + 5) sqrt(ln(20) / 2000) = 1.76 < M.
+    _, out, _ = _run(CONVEX + ["--loss-bound", "5"], capsys)
+    expected = bounds.high_probability_gap(0.02, 1000, 5.0, 0.05).value
     assert float(_table(out)[0][4]) == pytest.approx(expected, rel=1e-5)
+
+
+def test_a_vacuous_high_probability_column_is_hidden_with_the_reason(capsys):
+    # M = 1: the same bound is 0.02 + 41 sqrt(ln(20) / 2000) = 1.61 >= M at epoch 1 and above
+    # later: it says nothing, so the column is left out and the smallest value is named.
+    _, out, _ = _run(CONVEX + ["--loss-bound", "1"], capsys)
+    assert all(len(row) == 4 for row in _table(out))
+    smallest = bounds.high_probability_gap(0.02, 1000, 1.0, 0.05).value
+    assert smallest >= 1
+    assert f"gap w.p. 0.95 (high-probability gap bound) not shown: at least {smallest:.6g}" in out
+
+
+def test_json_output_holds_every_epoch_and_the_planner(capsys):
+    code, out, _ = _run(CONVEX + ["--loss-bound", "1", "--target", "0.05", "--json"], capsys)
+    assert code == 0
+    data = json.loads(out)
+    assert [e["steps"] for e in data["epochs"]] == [100, 200, 300]
+    assert [e["stability"]["value"] for e in data["epochs"]] == pytest.approx([0.02, 0.04, 0.06])
+    assert data["epochs"][0]["high_probability_gap"]["vacuous"] is True
+    assert data["planner"]["value"] == 250 and data["planner"]["quantity"] == "steps"
+    assert data["inputs"]["train_size"] == 1000
 
 
 def test_step_size_above_two_over_beta_is_na_with_reason(capsys):
@@ -128,10 +150,34 @@ def test_train_size_planner(capsys):
     assert "at least 1200 training examples (for 300 steps)" in out
 
 
-def test_invalid_input_returns_two_with_a_message(capsys):
-    code, out, err = _run(
-        ["--regime", "convex", "-n", "1", "--lipschitz", "1", "--step-size", "0.1"], capsys
-    )
-    assert code == 2 and "n (training-set size) must be >= 2" in err
-    code, _, err = _run(CONVEX + ["--delta", "2"], capsys)
-    assert code == 2 and "delta" in err
+def _error(argv, capsys) -> str:
+    parser = argparse.ArgumentParser(prog="sgdstab bound")
+    configure(parser)
+    with pytest.raises(SystemExit) as stop:
+        run(parser.parse_args(argv))
+    assert stop.value.code == 2
+    return capsys.readouterr().err
+
+
+@pytest.mark.parametrize(("option", "value", "message"), [
+    ("-n", "-5", "argument --train-size/-n: must be at least 2 training examples, got -5"),
+    ("-n", "0", "argument --train-size/-n: must be at least 2 training examples, got 0"),
+    ("--delta", "2", "argument --delta: must be less than 1, got 2"),
+    ("--epochs", "0", "argument --epochs: must be at least 1 epoch, got 0"),
+    ("--lipschitz", "nan", "argument --lipschitz: must be a finite number, got nan"),
+    ("--batch-size", "x", "argument --batch-size: expected a whole number, got 'x'"),
+])
+def test_invalid_input_names_the_option_in_the_users_terms(capsys, option, value, message):
+    argv = [a for a in CONVEX]
+    if option in argv:
+        argv[argv.index(option) + 1] = value
+    else:
+        argv += [option, value]
+    err = _error(argv, capsys)
+    assert message in err
+    assert "decay_every" not in err and "-150" not in err
+
+
+def test_a_batch_larger_than_the_training_set_is_refused(capsys):
+    code, _, err = _run(CONVEX[:-2] + ["--batch-size", "2000"], capsys)
+    assert code == 2 and "--batch-size 2000 is larger than --train-size 1000" in err

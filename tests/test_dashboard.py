@@ -19,6 +19,7 @@ import urllib.error
 import urllib.parse
 import urllib.request
 from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -31,7 +32,15 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import Constants, StabilityTracker
-from sgdstab.sinks import dashboard_layout, scalar_tags
+from sgdstab.reading import EpochReading
+from sgdstab.sinks import (
+    BOUNDS_RUN,
+    advice_markdown,
+    bound_tags,
+    dashboard_layout,
+    scalar_tags,
+    summary_markdown,
+)
 
 SHADOWS = 3
 EPOCHS = 3
@@ -74,11 +83,12 @@ def run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, list, object]:
     return log_dir, readings, advice
 
 
-def _expected_scalars(readings: list) -> dict[str, list[tuple[int, float]]]:
+def _expected_scalars(readings: list, tags=scalar_tags, step: str = "steps"
+                      ) -> dict[str, list[tuple[int, float]]]:
     series: dict[str, list[tuple[int, float]]] = {}
     for reading in readings:
-        for tag, value in scalar_tags(reading):
-            series.setdefault(tag, []).append((reading.epoch, value))
+        for tag, value in tags(reading):
+            series.setdefault(tag, []).append((getattr(reading, step), value))
     return series
 
 
@@ -95,15 +105,85 @@ def test_event_files_hold_every_reading_value(run):
     log_dir, readings, _ = run
     accumulator = _accumulator(log_dir)
     expected = _expected_scalars(readings)
-    assert "bound/expected_stability" in expected and "divergence/shadow_2" in expected
+    assert "sgdstab/divergence/shadow_2" in expected
     assert set(accumulator.Tags()["scalars"]) == set(expected)
+    # x axis: the optimizer step count (10 steps an epoch here), not the epoch
+    assert [e.step for e in accumulator.Scalars("sgdstab/divergence/shadow_2")] == [10, 20, 30]
     for tag, points in expected.items():
         events = accumulator.Scalars(tag)
+        # x axis: the optimizer step count (10 steps an epoch here), not the epoch
         assert [e.step for e in events] == [step for step, _ in points]
         # event files store float32 (numpy does the same rounding)
         np.testing.assert_array_equal(
             np.asarray([e.value for e in events], dtype=np.float32),
             np.asarray([value for _, value in points], dtype=np.float32))
+
+
+def test_bounds_go_to_a_sibling_run_under_the_measured_quantitys_tag(run):
+    log_dir, readings, _ = run
+    main = set(_accumulator(log_dir).Tags()["scalars"])
+    bounds = _accumulator(log_dir / BOUNDS_RUN)
+    expected = _expected_scalars(readings, bound_tags)
+    assert "sgdstab/stability/loss_difference_mean" in expected   # the expected bound
+    assert set(bounds.Tags()["scalars"]) == set(expected)
+    assert set(expected) <= main   # every bound shares its chart with a measured curve
+    for tag, points in expected.items():
+        np.testing.assert_array_equal(
+            np.float32([e.value for e in bounds.Scalars(tag)]), np.float32([v for _, v in points]))
+    last = readings[-1]
+    assert dict(bound_tags(last))["sgdstab/stability/loss_difference_mean"] == last.expected_bound
+
+
+@dataclass(frozen=True)
+class _WithTrivialLoss(EpochReading):
+    trivial_loss: float | None = None   # the field the readings are gaining
+
+
+def _reading(**fields) -> EpochReading:
+    base = dict(epoch=2, steps=40, divergence=(0.1, 0.2), audit_divergence=None,
+                layer_divergence={}, loss_difference_max=0.05, loss_difference_mean=0.01,
+                gap_estimate=0.02, gap_stderr=0.01, train_loss=0.5, holdout_loss=0.6)
+    base.update(fields)
+    cls = _WithTrivialLoss if "trivial_loss" in fields else EpochReading
+    return cls(**base)
+
+
+def test_non_finite_and_vacuous_bounds_are_not_written():
+    constants = {"lipschitz": 2.0, "loss_bound": 1.0}
+    reading = _reading(path_bound=(float("inf"), 0.3), expected_bound=8e101,
+                       uniform_stability=float("nan"), high_probability_gap=0.4,
+                       constants=constants)
+    # path bound 0.3 -> L * 0.3 = 0.6 < M = 1 kept; 8e101 >= M dropped; inf, nan dropped
+    assert dict(bound_tags(reading)) == {"sgdstab/divergence/shadow_1": 0.3,
+                                         "sgdstab/gap/holdout_minus_train": 0.4}
+    # the reading's trivial loss (when it has one) wins over M
+    reading = _reading(path_bound=(0.1, 0.3), expected_bound=0.5, high_probability_gap=0.7,
+                       constants=constants, trivial_loss=0.55)
+    assert dict(bound_tags(reading)) == {"sgdstab/divergence/shadow_0": 0.1,
+                                         "sgdstab/stability/loss_difference_mean": 0.5}
+    # nothing known to compare with: only the non-finite ones are dropped
+    reading = _reading(path_bound=(1e30, float("inf")), expected_bound=1e30)
+    assert dict(bound_tags(reading)) == {"sgdstab/divergence/shadow_0": 1e30,
+                                         "sgdstab/stability/loss_difference_mean": 1e30}
+    # a frozen shadow's NaN divergence is not written either
+    assert "sgdstab/divergence/shadow_0" not in dict(scalar_tags(_reading(
+        divergence=(float("nan"), 0.2))))
+
+
+def test_prefix_and_epoch_axis_are_configurable(tmp_path):
+    from sgdstab.sinks import TensorBoardSink
+
+    sink = TensorBoardSink(tmp_path, prefix="stab", step_axis="epoch")
+    sink.write_layout(2)
+    sink.write(_reading(expected_bound=0.05))
+    with pytest.raises(RuntimeError, match="before the first"):
+        sink.configure(prefix="other/")
+    sink.close()
+    tags = set(_accumulator(tmp_path).Tags()["scalars"])
+    assert "stab/divergence/shadow_1" in tags and all(t.startswith("stab/") for t in tags)
+    assert [e.step for e in _accumulator(tmp_path).Scalars("stab/loss/train_probe")] == [2]
+    with pytest.raises(ValueError, match="step_axis"):
+        TensorBoardSink(tmp_path / "x", step_axis="wall")
 
 
 def test_event_files_hold_the_layout_and_the_advice_text(run):
@@ -118,10 +198,24 @@ def test_event_files_hold_the_layout_and_the_advice_text(run):
     assert [c.title for c in layout.category] == list(wanted)
     for category in layout.category:
         assert [chart.title for chart in category.chart] == list(wanted[category.title])
-    text_tag = next(tag for tag in tensors if tag.startswith("advice/stop_suggestion"))
-    written = accumulator.Tensors(text_tag)[0].tensor_proto.string_val[0].decode("utf-8")
-    assert written == advice.summary()
+    text_tag = next(tag for tag in tensors if tag.startswith("sgdstab/advice"))
+    event = accumulator.Tensors(text_tag)[0]
+    written = event.tensor_proto.string_val[0].decode("utf-8")
+    assert event.step == 30   # the last reading's optimizer step
+    assert written == advice_markdown(advice.to_dict(), advice.summary())
     assert f"epoch {advice.suggested_epoch}" in written
+    saved = json.loads((log_dir / "advice.json").read_text())
+    from sgdstab import __version__
+    assert saved["sgdstab_version"] == __version__ and saved["schema_version"] >= 1
+
+
+def test_advice_markdown_writes_the_verdict_and_a_bulleted_summary():
+    summary = "Suggested stop: epoch 3 (bound_risk).\n  bound_risk: epoch 3.\n  other: -.\nEnd."
+    text = advice_markdown({"verdict_markdown": "**Stop at epoch 3**"}, summary)
+    assert text.startswith("**Stop at epoch 3**")
+    assert "- bound\\_risk: epoch 3.\n- other: -." in text   # one list, underscores escaped
+    assert summary_markdown(summary).splitlines()[0] == "Suggested stop: epoch 3 (bound\\_risk)."
+    assert "verdict" not in advice_markdown({}, "plain")
 
 
 # -- a real TensorBoard server -----------------------------------------------------------------
@@ -155,7 +249,8 @@ def server(run) -> Iterator[str]:
                                    + process.stderr.read().decode("utf-8", "replace")[-2000:])
             try:
                 tags = _get(base, "/data/plugin/scalars/tags")
-                if any("divergence/shadow_0" in run_tags for run_tags in tags.values()):
+                if any("sgdstab/divergence/shadow_0" in run_tags for run_tags in tags.values()) \
+                        and BOUNDS_RUN in tags:
                     break
             except (urllib.error.URLError, ConnectionError, OSError):
                 pass
@@ -176,25 +271,29 @@ def server(run) -> Iterator[str]:
 def test_server_lists_our_tags(run, server):
     _, readings, _ = run
     runs = _get(server, "/data/runs")
-    assert runs == ["."]  # the log dir itself is the one run
-    served = _get(server, "/data/plugin/scalars/tags")["."]
-    assert set(served) == set(_expected_scalars(readings))
+    assert sorted(runs) == [".", BOUNDS_RUN]  # the log dir itself and the bounds beside it
+    served = _get(server, "/data/plugin/scalars/tags")
+    assert set(served["."]) == set(_expected_scalars(readings))
+    assert set(served[BOUNDS_RUN]) == set(_expected_scalars(readings, bound_tags))
 
 
 def test_server_returns_the_values_we_wrote(run, server):
     _, readings, _ = run
-    for tag in ("divergence/shadow_1", "bound/expected_stability", "gap/replace_one_estimate"):
-        points = _get(server, "/data/plugin/scalars/scalars", run=".", tag=tag)
+    for run_name, tags, tag in ((".", scalar_tags, "sgdstab/divergence/shadow_1"),
+                                (".", scalar_tags, "sgdstab/gap/replace_one_estimate"),
+                                (BOUNDS_RUN, bound_tags, "sgdstab/stability/loss_difference_mean")):
+        points = _get(server, "/data/plugin/scalars/scalars", run=run_name, tag=tag)
         steps = [p[1] for p in points]  # [wall_time, step, value]
         values = np.asarray([p[2] for p in points], dtype=np.float32)
-        expected = _expected_scalars(readings)[tag]
+        expected = _expected_scalars(readings, tags)[tag]
         assert steps == [step for step, _ in expected]
         np.testing.assert_array_equal(values, np.float32([v for _, v in expected]))
 
 
 def test_server_serves_our_layout_and_every_chart_finds_its_tags(run, server):
     _, readings, _ = run
-    served_tags = set(_get(server, "/data/plugin/scalars/tags")["."])
+    served = _get(server, "/data/plugin/scalars/tags")
+    served_tags = set(served["."])
     layout = _get(server, "/data/plugin/custom_scalars/layout")
     wanted = dashboard_layout(SHADOWS)
     categories = {c["title"]: c for c in layout["category"]}
@@ -214,7 +313,8 @@ def test_server_serves_our_layout_and_every_chart_finds_its_tags(run, server):
                 # layout.proto: multiline tags are regular expressions matched from the start
                 assert chart["multiline"]["tag"] == tags
                 for pattern in tags:
-                    if pattern.startswith("bound/path_shadow") or \
-                            pattern.startswith("bound/high_probability"):
-                        continue  # absent when that bound does not apply
                     assert any(re.match(pattern, tag) for tag in served_tags), pattern
+    # the divergence charts' tags also match a bound in the bounds run (same tag, other colour)
+    assert any(re.match(dashboard_layout(SHADOWS)["sgdstab: divergence"][
+        "shadow 0: divergence and its pathwise bound (run 'bounds')"][1][0], tag)
+        for tag in served[BOUNDS_RUN])

@@ -19,7 +19,8 @@ from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import Constants, EpochReading, StabilityTracker, cli_report, read_history
 from sgdstab.advice import CAUTIONS, advise
-from sgdstab.report import write_report
+from sgdstab.labels import CRITERION_LABELS, criterion_label
+from sgdstab.report import BAND_FROM, _Canvas, write_report
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
 CHARTS = ("divergence.png", "stability.png", "gap.png", "losses.png")
@@ -144,13 +145,14 @@ def test_html_names_the_suggested_epoch_of_the_saved_advice(run_dir: Path):
     epoch = saved["suggested_epoch"]
     assert epoch is not None
     assert f"Suggested stop: epoch {epoch} of 5" in text
-    assert f"(criterion: {saved['criterion']})" in text
+    assert f"(criterion: {criterion_label(saved['criterion'])})" in text
+    assert "bound_risk" not in text   # labels, not internal names
 
 
 def test_html_shows_constants_bounds_and_cautions(run_dir: Path):
     text, _ = _parse(write_report(run_dir))
     assert "<strong>declared</strong>" in text
-    assert "expected" in text and "high probability" in text
+    assert "expected stability bound" in text and "high-probability gap bound" in text
     # the run declares no loss bound, so the high-probability bound is reported with its reason
     assert "loss bound (M) not declared" in text
     for caution in CAUTIONS:
@@ -263,3 +265,76 @@ def test_the_package_command_line_runs_the_report(run_dir: Path, tmp_path: Path,
     cli = pytest.importorskip("sgdstab.cli")
     assert cli.main(["report", str(run_dir), "--out", str(tmp_path)]) == 0
     assert Path(capsys.readouterr().out.strip()) == tmp_path / "report.html"
+
+
+# -- what a reader sees -------------------------------------------------------------------------
+
+def test_the_verdict_block_comes_first_with_a_word_for_each_status(run_dir: Path, tmp_path: Path):
+    # a hand-written advice.json with the verdict list the advice writes
+    saved = json.loads((run_dir / "advice.json").read_text())
+    saved["verdict"] = [
+        {"topic": "Stop", "status": "ok", "text": "Stop at epoch 3 <of 5>."},
+        {"topic": "Lockstep", "status": "fail", "text": "The null swap drifted."},
+        {"topic": "Bounds", "status": "warn", "text": "Estimated constants."},
+        {"topic": "Gap", "status": "info", "text": "Two shadows: noisy."},
+        {"topic": "Odd", "status": "strange", "text": "Unknown status reads as a note."},
+    ]
+    saved["criteria"][0]["label"] = "my own label"
+    other = tmp_path / "run"
+    other.mkdir()
+    for name in ("history.jsonl", "run.json"):
+        (other / name).write_bytes((run_dir / name).read_bytes())
+    (other / "advice.json").write_text(json.dumps(saved))
+    text, _ = _parse(write_report(other))
+    block = text[text.index('<ul class="verdict">'):]
+    assert text.index('<ul class="verdict">') < text.index("Suggested stop") < \
+        text.index("<h2>Charts</h2>")
+    for word, topic in (("OK", "Stop"), ("FAILED", "Lockstep"), ("WARNING", "Bounds"),
+                        ("NOTE", "Gap"), ("NOTE", "Odd")):
+        assert f'<span class="status">{word}</span> <strong>{topic}</strong>' in block
+    assert "Stop at epoch 3 &lt;of 5&gt;." in block
+    assert '<li class="fail">' in block and '<li class="strange">' not in block
+    assert "my own label" in text    # a criterion's own label wins over the known one
+    # no verdict in advice.json: no block
+    plain, _ = _parse(write_report(run_dir))
+    assert '<ul class="verdict">' not in plain
+
+
+def test_every_known_criterion_has_a_label_and_unknown_names_read_as_words():
+    assert set(CRITERION_LABELS) == {"bound_risk", "bound_budget", "measured_risk",
+                                     "divergence_acceleration"}
+    assert criterion_label("bound_risk") == "training loss + stability bound"
+    assert criterion_label("new_rule") == "new rule"
+    assert criterion_label("bound_risk", {"label": "given"}) == "given"
+
+
+def test_epoch_ticks_are_whole_numbers():
+    canvas = _Canvas("t", "y")
+    canvas.line([1, 2, 3], [0.1, 0.2, 0.3])
+    canvas.png(None, "empty")
+    ticks = [t for t in canvas.axes.get_xticks() if 1 <= t <= 3]
+    assert ticks and all(float(t).is_integer() for t in ticks)
+
+
+def test_the_wide_table_scrolls_inside_the_page(run_dir: Path):
+    text, _ = _parse(write_report(run_dir))
+    assert ".scroll { overflow-x: auto" in text
+    table = text[text.index("<h2>Per-epoch table</h2>"):text.index("<h2>Run</h2>")]
+    assert table.count('<div class="scroll"><table class="numbers">') == 1
+    assert table.split("</tr>")[0].count("<th>") <= 12
+
+
+def test_many_shadows_are_drawn_as_a_band_and_a_shared_bound_as_one_line(tmp_path: Path):
+    many = 16
+    assert many >= BAND_FROM
+    readings = [_synthetic(e, divergence=tuple(0.001 * (k + 1) * e for k in range(many)),
+                           path_bound=(0.05 * e,) * many) for e in (1, 2, 3)]
+    _write_history(tmp_path, readings)
+    text, _ = _parse(write_report(tmp_path))
+    assert "the band spans the smallest to the largest, the line is the median" in text
+    assert "the same for every shadow" in text
+    # two shadows with different bounds: one line each, legend entry in a neutral colour
+    few = tmp_path / "few"
+    _write_history(few, [_synthetic(e, path_bound=(0.05 * e, 0.07 * e)) for e in (1, 2, 3)])
+    text, _ = _parse(write_report(few))
+    assert "with its pathwise bound (dashed, same colour)" in text

@@ -46,13 +46,30 @@ def test_tensorboard_scalars_read_back_with_tensorboards_event_reader(run_dir):
     events = EventAccumulator(str(out))
     events.Reload()
     tags = set(events.Tags()["scalars"])
-    assert {"divergence/shadow_0", "divergence/shadow_1", "divergence/null_swap_audit",
-            "loss_difference/max", "loss_difference/mean", "gap/replace_one_estimate",
-            "loss/train_probe", "loss/holdout_probe"} <= tags
-    values = [e.value for e in events.Scalars("divergence/shadow_1")]
-    steps = [e.step for e in events.Scalars("divergence/shadow_1")]
-    assert steps == [1, 2, 3]
+    assert {"sgdstab/divergence/shadow_0", "sgdstab/divergence/shadow_1",
+            "sgdstab/divergence/null_swap_audit", "sgdstab/stability/loss_difference_max",
+            "sgdstab/stability/loss_difference_mean", "sgdstab/gap/replace_one_estimate",
+            "sgdstab/loss/train_probe", "sgdstab/loss/holdout_probe"} <= tags
+    assert all(tag.startswith("sgdstab/") for tag in tags)
+    values = [e.value for e in events.Scalars("sgdstab/divergence/shadow_1")]
+    steps = [e.step for e in events.Scalars("sgdstab/divergence/shadow_1")]
+    assert steps == [r.steps for r in readings]   # the optimizer step count, not the epoch
+    assert steps != [1, 2, 3]
     assert values == pytest.approx([r.divergence[1] for r in readings], rel=1e-6)
+
+
+def test_history_and_advice_records_carry_the_schema_and_package_versions(run_dir, tmp_path):
+    from sgdstab import __version__
+    from sgdstab.reading import SCHEMA_VERSION
+
+    out, _ = run_dir
+    records = read_history(out)
+    assert all(r["schema_version"] == SCHEMA_VERSION and r["sgdstab_version"] == __version__
+               for r in records)
+    # a record written before the fields existed still reads
+    old = {k: v for k, v in records[0].items() if k not in ("schema_version", "sgdstab_version")}
+    (tmp_path / "history.jsonl").write_text(json.dumps(old) + "\n")
+    assert EpochReading.from_dict(read_history(tmp_path)[0]).epoch == 1
 
 
 def test_a_truncated_last_line_is_skipped_with_a_warning(run_dir, tmp_path):

@@ -1,0 +1,8 @@
+"""``python -m sgdstab``: the same command line as ``sgdstab``."""
+
+import sys
+
+from .cli import main
+
+if __name__ == "__main__":
+    sys.exit(main())
