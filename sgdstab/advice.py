@@ -37,6 +37,7 @@ from typing import Any
 
 import numpy as np
 
+from .labels import CRITERION_LABELS
 from .reading import EpochReading, json_safe
 from .trends import (
     BudgetProjection,
@@ -78,14 +79,9 @@ CAUTIONS: tuple[str, ...] = (
     "suggestion is an input to that process, not a replacement for it.",
 )
 
-#: Human labels of the criteria (reports and dashboards show these, not the names).
-LABELS: dict[str, str] = {
-    "holdout_loss": "lowest held-out loss",
-    "estimated_risk": "training loss + estimated expected gap",
-    "divergence_acceleration": "divergence speeds up (heuristic)",
-    "guarantee": "stability bound within target (guarantee)",
-    "certified_risk": "smallest certified risk bound (guarantee)",
-}
+#: Human labels of the criteria this advice names (reports and dashboards show these).
+LABELS: dict[str, str] = {name: CRITERION_LABELS[name] for name in (
+    "holdout_loss", "estimated_risk", "divergence_acceleration", "guarantee", "certified_risk")}
 
 #: The default target is this fraction of the trivial loss.
 DEFAULT_TARGET_FRACTION = 0.1

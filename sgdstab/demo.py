@@ -7,8 +7,8 @@ three overlapping, slightly curved clusters with 10 % label noise. The grader is
 feature, every row scaled to norm <= 1, trained by plain SGD with a step-decay schedule.
 
 That makes the per-example cross-entropy convex in the weights with constants known in closed
-form, so the demo's bounds are certified rather than estimated (derivation, common practice for
-softmax regression): the gradient is ``(p - e_y) x^T`` with ``||p - e_y||^2 <= 2``, so
+form, so the demo's bounds rest on declared rather than estimated constants (derivation, common
+practice for softmax regression): the gradient is ``(p - e_y) x^T`` with ``||p - e_y||^2 <= 2``, so
 ``L = sqrt(2) max ||x||``; the Hessian is ``(diag(p) - p p^T) (x) x x^T`` and by Gershgorin
 ``lambda_max(diag(p) - p p^T) <= max_k 2 p_k (1 - p_k) <= 1/2``, so ``beta = max ||x||^2 / 2``.
 """

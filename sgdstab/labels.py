@@ -9,10 +9,15 @@ __all__ = ["BOUND_LABELS", "CRITERION_LABELS", "bound_label", "criterion_label"]
 
 #: Stop criteria by internal name (advice.json's ``name``), as a reader would say them.
 CRITERION_LABELS: Mapping[str, str] = {
+    "holdout_loss": "lowest held-out loss",
+    "estimated_risk": "training loss + estimated expected gap",
+    "guarantee": "stability bound within target (guarantee)",
+    "certified_risk": "smallest certified risk bound (guarantee)",
+    # names in advice.json files of earlier versions
     "bound_risk": "training loss + stability bound",
     "bound_budget": "stability bound within the target",
     "measured_risk": "training loss + gap estimate",
-    "divergence_acceleration": "divergence growth speeding up",
+    "divergence_acceleration": "divergence speeds up (heuristic)",
 }
 
 

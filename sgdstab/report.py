@@ -368,8 +368,8 @@ def _stop_section(advice: StopAdvice, record: Mapping[str, Any]) -> str:
         head = (f"Suggested stop: epoch {advice.suggested_epoch} of {advice.epochs_seen} "
                 f"(criterion: {label})")
         box = "stop"
-    kind = ("certified (declared constants)" if advice.certified else
-            "indicative (estimated constants)" if advice.bound_applies else
+    kind = ("from declared constants: they hold under the stated assumptions"
+            if advice.certified else "indicative (estimated constants)" if advice.bound_applies else
             f"not applicable: {advice.bound_reason}")
     parts = [f'<div class="{box}"><p><strong>{_e(head)}</strong></p><p>{_e(advice.reason)}</p>'
              f"<p>Bounds: {_e(kind)}</p></div>",

@@ -56,7 +56,8 @@ def test_demo_prints_a_legend_and_its_advice_once(tmp_path, capsys):
     for heading, _, meaning in COLUMNS[2:]:
         assert f"  {heading:<15} {meaning}" in printed
     assert "exp. bound" not in printed
-    assert printed.count("Stop advice") == 1
+    assert printed.count("Suggested stop") == 1 and printed.count("Verdict:") == 1
+    assert printed.index("Verdict:") < printed.index("max div.")   # the verdict first
     advice = printed[printed.index("Stop advice"):]
     # the chosen criterion's reason appears once, not again in the list below it
     reason = advice.splitlines()[0].split(". ", 1)[1]

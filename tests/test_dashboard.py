@@ -211,8 +211,10 @@ def test_event_files_hold_the_layout_and_the_advice_text(run):
 
 def test_advice_markdown_writes_the_verdict_and_a_bulleted_summary():
     summary = "Suggested stop: epoch 3 (bound_risk).\n  bound_risk: epoch 3.\n  other: -.\nEnd."
-    text = advice_markdown({"verdict_markdown": "**Stop at epoch 3**"}, summary)
-    assert text.startswith("**Stop at epoch 3**")
+    # the advice's own Markdown (verdict, suggestion, criteria, cautions) when it carries one
+    assert advice_markdown({"verdict_markdown": "**Stop at epoch 3**"}, summary) == \
+        "**Stop at epoch 3**"
+    text = advice_markdown({}, summary)
     assert "- bound\\_risk: epoch 3.\n- other: -." in text   # one list, underscores escaped
     assert summary_markdown(summary).splitlines()[0] == "Suggested stop: epoch 3 (bound\\_risk)."
     assert "verdict" not in advice_markdown({}, "plain")

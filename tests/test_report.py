@@ -145,7 +145,8 @@ def test_html_names_the_suggested_epoch_of_the_saved_advice(run_dir: Path):
     epoch = saved["suggested_epoch"]
     assert epoch is not None
     assert f"Suggested stop: epoch {epoch} of 5" in text
-    assert f"(criterion: {criterion_label(saved['criterion'])})" in text
+    assert f"(criterion: {saved['criterion_label']})" in text
+    assert saved['criterion_label'] == criterion_label(saved['criterion'])
     assert "bound_risk" not in text   # labels, not internal names
 
 
@@ -295,15 +296,20 @@ def test_the_verdict_block_comes_first_with_a_word_for_each_status(run_dir: Path
     assert "Stop at epoch 3 &lt;of 5&gt;." in block
     assert '<li class="fail">' in block and '<li class="strange">' not in block
     assert "my own label" in text    # a criterion's own label wins over the known one
-    # no verdict in advice.json: no block
-    plain, _ = _parse(write_report(run_dir))
+    # no verdict in advice.json (an older file): no block
+    del saved["verdict"]
+    (other / "advice.json").write_text(json.dumps(saved))
+    plain, _ = _parse(write_report(other))
     assert '<ul class="verdict">' not in plain
 
 
 def test_every_known_criterion_has_a_label_and_unknown_names_read_as_words():
-    assert set(CRITERION_LABELS) == {"bound_risk", "bound_budget", "measured_risk",
-                                     "divergence_acceleration"}
+    from sgdstab.advice import LABELS
+
+    assert set(LABELS) <= set(CRITERION_LABELS)      # every criterion the advice names
+    assert {"bound_risk", "bound_budget", "measured_risk"} <= set(CRITERION_LABELS)  # older files
     assert criterion_label("bound_risk") == "training loss + stability bound"
+    assert criterion_label("holdout_loss") == "lowest held-out loss"
     assert criterion_label("new_rule") == "new rule"
     assert criterion_label("bound_risk", {"label": "given"}) == "given"
 
