@@ -91,8 +91,12 @@ def test_understated_constants_make_the_assumption_audit_fire():
     honest = _closed_form_constants(x)
     understated = Constants(lipschitz=honest.lipschitz / 50, smoothness=honest.smoothness,
                             convex=True)
-    with pytest.warns(AssumptionWarning, match="ASSUMPTIONS VIOLATED"):
+    with pytest.warns(AssumptionWarning, match="ASSUMPTIONS VIOLATED") as caught:
         readings, _ = _run(understated, epochs=1)
+    message = str(next(w.message for w in caught if w.category is AssumptionWarning))
+    # the likely causes, in order: the tool's own configuration first, then the constants
+    assert message.index("(1)") < message.index("sum-reduced") < message.index("(2)") < \
+        message.index("declared constants are too small") < message.index("(3)")
     assert readings[-1].assumption_violated
     assert any("assumption audit failed" in note for note in readings[-1].notes)
 
