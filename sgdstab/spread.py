@@ -4,8 +4,10 @@
 ``SpreadStabilityTracker``. Every rank runs the user's loop unchanged and identically (the main run
 is *replicated*: same seed, same loader order), so every rank sees the same batches and can replay
 them on its own share of the shadows without talking to anyone: shadow k is stepped on rank
-``k % W`` only, the null-swap audit on rank 0. The swapped examples are chosen exactly as one
-process holding all K would choose them, then partitioned.
+``k % W`` only, the null-swap audit on rank 0, one shadow at a time (the per-shadow engine: the
+batched engine's rounding depends on how many shadows it stacks, so it is refused here). The
+swapped examples are chosen exactly as one process holding all K would choose them, then
+partitioned.
 
 Communication happens at epoch ends only: one exchange of the per-shadow divergences, faults and
 fork steps (with a fingerprint of each rank's main run, which must be bit-identical), one of the
@@ -34,7 +36,6 @@ from torch.nn.parallel import DistributedDataParallel
 from torch.utils._pytree import tree_flatten
 
 from . import measure
-from .engines import auto_prefers_per_shadow
 from .lockstep import LockstepError, NeighbourSpec, Shadow, preserved_rng
 from .probe import model_losses, summarise_probe
 from .reading import EpochReading
@@ -146,12 +147,16 @@ class SpreadStabilityTracker(StabilityTracker):
         self.shadow_timeout = float(shadow_timeout)
         self._monitored = dist.get_backend(shadow_group) == "gloo"
         self._source = dist.get_global_rank(shadow_group, 0)
-        self._exchanges = 0
         requested = options.get("engine", "auto")
-        if requested == "auto":   # decided by the largest share, so every rank decides alike
-            runs = self._largest_share(options) + int(bool(options.get("audit", True)))
-            options["engine"] = "per_shadow" if auto_prefers_per_shadow(
-                runs, torch.get_num_threads(), model) else "batched"
+        if requested == "batched":
+            raise LockstepError(
+                "engine='batched' with shadow_group: the batched engine's rounding depends on how "
+                "many shadows one process stacks (2 ranks holding 4 of K=8 each gave a gap "
+                "estimate 1.3e-6 relative away from one process holding all 8), so the spread "
+                "reading would not equal the single-process one; spread trackers step their "
+                "shadows one by one (engine='per_shadow' or 'auto')")
+        if requested == "auto":
+            options["engine"] = "per_shadow"
         failure: BaseException | None = None
         try:
             super().__init__(model, optimizer, **options)
@@ -169,11 +174,6 @@ class SpreadStabilityTracker(StabilityTracker):
             raise
 
     # -- which rank holds what ----------------------------------------------------------------
-    def _largest_share(self, options: dict[str, Any]) -> int:
-        swap = options.get("swap")
-        count = len(swap) if swap is not None else int(options.get("shadows", 4))
-        return math.ceil(count / self.world_size)
-
     def _holds(self, k: int) -> bool:
         return self.rank == 0 if k < 0 else k % self.world_size == self.rank
 
@@ -242,7 +242,6 @@ class SpreadStabilityTracker(StabilityTracker):
     def _exchange(self, value: Any, what: str) -> list[Any]:
         """Every rank's ``value``, in rank order (one all_gather_object, after a monitored barrier
         on gloo); a dead or stalled rank gives a ``LockstepError``, never a hang."""
-        self._exchanges += 1
         try:
             if self._monitored and self.world_size > 1:
                 dist.monitored_barrier(group=self.shadow_group,
@@ -304,22 +303,16 @@ class SpreadStabilityTracker(StabilityTracker):
     def _probe_summary(self) -> tuple[measure.ProbeSummary, np.ndarray, float | None]:
         probe, per_example, engine = self._probe, self._per_example, self.engine
         main = model_losses(self.model, probe, per_example)
-        reference_module = getattr(engine, "reference_module", lambda: None)()
-        reference = None if reference_module is None else \
-            model_losses(reference_module, probe, per_example)
         losses: dict[int, np.ndarray | None] = {}
         for k in self.held_shadows():
             shadow = self.shadows[k]
             if shadow.fault is not None:
                 losses[k] = np.full_like(main, np.nan)
             elif shadow.forked:
-                own = model_losses(engine.module_of(shadow), probe, per_example)
-                # The batched engine's shadows are compared with its own no-swap reference run.
-                losses[k] = own if reference is None else main + (own - reference)
+                losses[k] = model_losses(engine.module_of(shadow), probe, per_example)
             else:
                 losses[k] = None   # not forked yet: the main run's losses
-        largest = measure.largest_loss(main, reference,
-                                       *[v for v in losses.values() if v is not None])
+        largest = measure.largest_loss(main, *[v for v in losses.values() if v is not None])
         everyone = self._exchange({"losses": losses, "largest": largest},
                                   f"epoch {self.epoch} probe-loss")
         shadow_losses: list[np.ndarray] = [main] * len(self.shadows)

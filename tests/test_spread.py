@@ -260,6 +260,9 @@ def test_data_parallel_and_spread_shadows_do_not_combine(one_rank_group):
                                shadows=2, shadow_group=one_rank_group)
     assert isinstance(tracker, SpreadStabilityTracker) and tracker.held_shadows() == [0, 1]
     tracker.close()
+    with pytest.raises(LockstepError, match="batched"):
+        StabilityTracker(model, optimizer, train_set=data, loss_fn=F.cross_entropy,
+                         engine="batched", shadow_group=one_rank_group)
     with pytest.raises(TypeError, match="process group"):
         StabilityTracker(model, optimizer, train_set=data, loss_fn=F.cross_entropy,
                          shadow_group="world")
