@@ -69,6 +69,13 @@ class StabilityTracker:
     ``tracker.finish_epoch()`` after each epoch; the shadows step inside ``optimizer.step()``.
     """
 
+    def __new__(cls, *args: Any, shadow_group: Any = None, **kwargs: Any) -> StabilityTracker:
+        if shadow_group is not None and cls is StabilityTracker:   # shadows spread over ranks
+            from .spread import SpreadStabilityTracker
+
+            return super().__new__(SpreadStabilityTracker)
+        return super().__new__(cls)
+
     def __init__(
         self,
         model: nn.Module,
@@ -94,7 +101,14 @@ class StabilityTracker:
         estimate_every: int = 1,
         estimate_options: dict[str, Any] | None = None,
         preserve_host_rng: bool | None = None,
+        shadow_group: Any = None,
     ) -> None:
+        if shadow_group is not None:   # StabilityTracker(...) itself builds a spread tracker
+            raise LockstepError(
+                f"{type(self).__name__} cannot spread its shadows over ranks (shadow_group): "
+                "shadow parallelism replicates the main run on every rank, which data-parallel "
+                "tracking does not; use StabilityTracker(model, optimizer, shadow_group=group, "
+                "...) on every rank with a replicated loop instead")
         if not isinstance(model, nn.Module):
             raise TypeError("model must be a torch.nn.Module")
         if isinstance(model, DistributedDataParallel):
@@ -162,10 +176,13 @@ class StabilityTracker:
         self._position = np.zeros(0, dtype=np.int64)   # training index -> drawable position
         self._part_note: str | None = None
         self.specs = self._neighbour_specs(shadows, swap)
+        held = [self._holds(k) for k in range(len(self.specs))]
+        audit = bool(audit) and self._holds(-1)
         self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
-                                  shadows=len(self.specs) + int(bool(audit)))
-        self.shadows: list[Shadow] = [self.engine.add_shadow(spec, None, f"shadow_{k}")
-                                      for k, spec in enumerate(self.specs)]
+                                  shadows=sum(held) + int(audit))
+        self.shadows: list[Shadow] = [
+            self.engine.add_shadow(spec, None, f"shadow_{k}") if held[k] else
+            self._held_elsewhere(k, spec) for k, spec in enumerate(self.specs)]
         self.audit_shadow: Shadow | None = None
         if audit:
             placeholder = NeighbourSpec(-1, None, "self")
@@ -194,8 +211,9 @@ class StabilityTracker:
         self._is_swapped = np.zeros(0, dtype=bool)   # by training index (built with _swapped)
         self.sinks = RunSinks(log_dir) if log_dir is not None and self._writes_files() else None
         if not self.lazy_fork:
-            for shadow in self.shadows:
-                self.engine.fork(shadow, 0, None)
+            for shadow, mine in zip(self.shadows, held):
+                if mine:
+                    self.engine.fork(shadow, 0, None)
         self._hooks = [optimizer.register_step_pre_hook(self._before_main_step),
                        optimizer.register_step_post_hook(self._after_main_step)]
         if self.sinks is not None:
@@ -213,6 +231,15 @@ class StabilityTracker:
             return explicit_neighbours(swap, self.n)
         return seeded_neighbours(shadows, self.n, self._rng, self._fetch, self.train_set,
                                  self.replacements)
+
+    def _holds(self, k: int) -> bool:
+        """Whether this process steps shadow ``k`` (-1: the null-swap audit); a spread tracker
+        holds only its share."""
+        return True
+
+    def _held_elsewhere(self, k: int, spec: NeighbourSpec) -> Shadow:
+        """The stand-in for shadow ``k`` when another process steps it (spread trackers)."""
+        raise NotImplementedError
 
     def _loss_of(self, model: nn.Module, batch: Any) -> torch.Tensor:
         if self.step_loss is not None:
@@ -513,9 +540,7 @@ class StabilityTracker:
                 self.shadows, self.train_set, n=self.n, probe_set=self.probe_set,
                 replacements=self.replacements, size=self.probe_size, seed=self.seed,
                 collate=self._collate, drawable=self.drawable)
-        summary, train_losses, largest = measure.probe_summary(
-            self.model, self.engine, self.shadows, self._probe, self._per_example,
-            has_probe_set=self.probe_set is not None)
+        summary, train_losses, largest = self._probe_summary()
         notes += summary.notes
         held_out = self._held_out_summary(train_losses)
         self._see_losses(largest)
@@ -537,6 +562,12 @@ class StabilityTracker:
             self.sinks.write(reading)
         self.time_spent.epoch_end += time.perf_counter() - start
         return reading
+
+    def _probe_summary(self) -> tuple[measure.ProbeSummary, np.ndarray, float | None]:
+        """The probe's summary, the main run's training-row losses and the largest loss (a
+        spread tracker gathers the shadows' losses from every rank)."""
+        return measure.probe_summary(self.model, self.engine, self.shadows, self._probe,
+                                     self._per_example, has_probe_set=self.probe_set is not None)
 
     def _held_out_rows(self) -> ProbeRows | None:
         if self._holdout is None:
