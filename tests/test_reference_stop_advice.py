@@ -58,13 +58,14 @@ def _test_loss(model: torch.nn.Module, test: TensorDataset) -> float:
         return float(F.cross_entropy(model(test.tensors[0]), test.tensors[1]))
 
 
-def _train(name: str, *, epochs: int, lr: float, seed: int = 0, shadows: int = 4):
+def _train(name: str, *, epochs: int, lr: float, seed: int = 0, shadows: int = 2,
+           batch_size: int = 16):
     torch.manual_seed(seed)
     train, held, test, classes = _splits(name, seed)
     model = torch.nn.Linear(train.tensors[0].shape[1], classes, bias=False)
     torch.nn.init.zeros_(model.weight)
     optimizer = torch.optim.SGD(model.parameters(), lr=lr)
-    loader = DataLoader(train, batch_size=8, shuffle=True,
+    loader = DataLoader(train, batch_size=batch_size, shuffle=True,
                         generator=torch.Generator().manual_seed(seed))
     tracker = StabilityTracker(model, optimizer, train_set=train, loss_fn=F.cross_entropy,
                                shadows=shadows, replacements=held, seed=seed,
