@@ -485,11 +485,15 @@ def max_step_size(
             note = f"capped by the condition peak step size <= {label} = {cap:.6g}"
             return plan(cap, True, "", bound_at_value=at(cap).value, note=note)
         hi = cap
-    else:  # nonconvex: the t0 = T branch, M min(1, T b / n), does not grow with the step size
-        saturated = float(loss_bound) * min(1.0, steps * int(batch_size) / float(n))
-        if _limit_value(saturated, problem) <= target:
-            note = "the bound saturates at M min(1, T b / n) within target: any step size"
-            return plan(None, True, "", unbounded=True, note=note)
+    else:
+        # Non-convex: the t0 = T branch, M min(1, T b / n), does not grow with the step size.
+        # (Convex without a declared smoothness also lands here; its bound grows without limit.)
+        if regime == "nonconvex":
+            assert loss_bound is not None  # planned_bounds does not apply without M here
+            saturated = float(loss_bound) * min(1.0, steps * int(batch_size) / float(n))
+            if _limit_value(saturated, problem) <= target:
+                note = "the bound saturates at M min(1, T b / n) within target: any step size"
+                return plan(None, True, "", unbounded=True, note=note)
         hi = shape.peak
         while _value(at(hi)) <= target:
             hi *= 2
