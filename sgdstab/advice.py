@@ -373,8 +373,11 @@ def _certified_gap(reading: EpochReading, epochs: int) -> float | None:
 
 
 def _path_ratio(reading: EpochReading) -> float | None:
-    ratios = [finite_or_none(d) / b for d, b in zip(reading.divergence, reading.path_bound)
-              if finite_or_none(d) is not None and finite_or_none(b) and b > 0]
+    ratios = []
+    for d, b in zip(reading.divergence, reading.path_bound):
+        divergence, bound = finite_or_none(d), finite_or_none(b)
+        if divergence is not None and bound and bound > 0:
+            ratios.append(divergence / bound)
     return max(ratios) if ratios else None
 
 
@@ -551,8 +554,8 @@ def _measured_pick(rows: Sequence[AdviceRow], ordered: Sequence[EpochReading],
         return out
     turn = acceleration_in(ordered, table, consecutive, relative_noise, noise_sigmas)
     if turn is not None:
-        value = finite_or_none(table[[r.epoch for r in rows].index(turn)].mean())
-        out.append(Criterion(name, turn, value,
+        mean = finite_or_none(table[[r.epoch for r in rows].index(turn)].mean())
+        out.append(Criterion(name, turn, mean,
                              f"After epoch {turn} the mean divergence's growth per step rose "
                              f"{consecutive} epoch(s) running beyond noise: the shadows are "
                              "separating faster than linearly."))
@@ -581,6 +584,7 @@ def _follow_sentence(chosen: Criterion | None, guarantee: Criterion, bound_name:
     if guarantee.epoch is None:
         return (f"Follow the measured stop, {measured}: {evidence}; no stability bound gives a "
                 "usable guarantee for this run.")
+    assert chosen.epoch is not None  # a criterion is chosen only for the epoch it picks
     if guarantee.epoch >= chosen.epoch:
         return (f"Both agree: stop at {measured}; the {bound_name} stays within the target "
                 "there.")

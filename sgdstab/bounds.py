@@ -144,7 +144,7 @@ def _step_sizes(step_sizes: Sequence[float] | np.ndarray) -> np.ndarray:
     return a
 
 
-def _integers(name: str, values: Sequence[int] | np.ndarray) -> np.ndarray:
+def _integers(name: str, values: Sequence[int] | np.ndarray | int) -> np.ndarray:
     x = np.asarray(values)
     if x.dtype.kind in "iu":
         return x.astype(np.int64, copy=False)
@@ -181,7 +181,7 @@ def _first_excess(a: np.ndarray, limit: float, label: str) -> str:
 
 def check_regime(
     regime: str,
-    step_sizes: Sequence[float],
+    step_sizes: Sequence[float] | np.ndarray,
     smoothness: float | None,
     strong_convexity: float = 0.0,
 ) -> str:
@@ -234,7 +234,11 @@ def _convex_value(total_step_size: float, n: float, lipschitz: float) -> float:
 
 
 def convex_bound(
-    step_sizes: Sequence[float], n: float, lipschitz: float, *, smoothness: float | None = None
+    step_sizes: Sequence[float] | np.ndarray,
+    n: float,
+    lipschitz: float,
+    *,
+    smoothness: float | None = None,
 ) -> Bound:
     """eps_stab <= (2 L^2 / n) * sum_t alpha_t.
 
@@ -316,7 +320,7 @@ def nonconvex_bound(
     lipschitz: float,
     smoothness: float,
     *,
-    step_sizes: Sequence[float] | None = None,
+    step_sizes: Sequence[float] | np.ndarray | None = None,
 ) -> Bound:
     """eps_stab <= (1 + 1/(beta c)) / (n - 1) (2 c L^2)^(1/(beta c + 1)) T^(beta c/(beta c + 1)).
 
@@ -328,7 +332,7 @@ def nonconvex_bound(
     n, lipschitz = _train_size(n), _positive("lipschitz", lipschitz)
     beta = _positive("smoothness", smoothness)
     source = f"{HRS}, Thm 3.12 (non-convex)"
-    assumptions = (
+    assumptions: tuple[str, ...] = (
         f"f(.; z) in [0, 1], L-Lipschitz (L = {lipschitz:.6g}), beta-smooth (beta = {beta:.6g})",
         f"alpha_t <= c/t (c = {c:.6g}) and non-increasing",
         _PLAIN_SGD,

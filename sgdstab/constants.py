@@ -239,7 +239,7 @@ def _flatten(batch: Any) -> tuple[list[Any], Callable[[list[Any]], Any]]:
     if isinstance(batch, Mapping):
         keys = list(batch.keys())
         parts = [_flatten(batch[key]) for key in keys]
-        kind = type(batch)
+        kind: type[Any] = type(batch)
 
         def rebuild_mapping(leaves: list[Any]) -> Any:
             out, start = {}, 0
@@ -311,6 +311,7 @@ def _loss_module(
         raise ValueError("give exactly one of loss_fn and step_loss")
     if step_loss is not None:
         return _BatchLoss(model, step_loss)
+    assert loss_fn is not None  # exactly one of the two was given
 
     def supervised(inner: nn.Module, batch: Any) -> torch.Tensor:
         inputs, targets = batch

@@ -65,7 +65,9 @@ def _hit_counts(hits: Sequence[int] | np.ndarray, batch_sizes: np.ndarray) -> np
 # Expansivity (HRS 2016 Sec. 2-3, from memory)
 
 
-def expansion_convex(step_sizes: Sequence[float], smoothness: float | None) -> np.ndarray:
+def expansion_convex(
+    step_sizes: Sequence[float] | np.ndarray, smoothness: float | None
+) -> np.ndarray:
     """eta_t = 1.
 
     Source: HRS 2016, expansivity of the gradient update (statement from memory).
@@ -76,7 +78,7 @@ def expansion_convex(step_sizes: Sequence[float], smoothness: float | None) -> n
 
 
 def expansion_strongly_convex(
-    step_sizes: Sequence[float], smoothness: float | None, strong_convexity: float
+    step_sizes: Sequence[float] | np.ndarray, smoothness: float | None, strong_convexity: float
 ) -> np.ndarray:
     """eta_t = 1 - alpha_t * gamma.
 
@@ -89,7 +91,7 @@ def expansion_strongly_convex(
     return 1.0 - _step_sizes(step_sizes) * gamma
 
 
-def expansion_smooth(step_sizes: Sequence[float], smoothness: float) -> np.ndarray:
+def expansion_smooth(step_sizes: Sequence[float] | np.ndarray, smoothness: float) -> np.ndarray:
     """eta_t = 1 + alpha_t * beta.
 
     Source: HRS 2016, expansivity of the gradient update (statement from memory).
@@ -98,7 +100,7 @@ def expansion_smooth(step_sizes: Sequence[float], smoothness: float) -> np.ndarr
     return 1.0 + _step_sizes(step_sizes) * _positive("smoothness", smoothness)
 
 
-def _expansion_for(regime: str, a: np.ndarray, beta: float | None, gamma: float) -> np.ndarray:
+def _expansion_for(regime: str, a: np.ndarray, beta: float, gamma: float) -> np.ndarray:
     if regime == "convex":
         return expansion_convex(a, beta)
     if regime == "strongly_convex":
@@ -164,11 +166,11 @@ def _pathwise_factors(
 
 
 def expected_divergence(
-    step_sizes: Sequence[float],
-    batch_sizes: Sequence[int],
+    step_sizes: Sequence[float] | np.ndarray,
+    batch_sizes: Sequence[int] | np.ndarray | int,
     n: float,
     lipschitz: float,
-    expansion: Sequence[float],
+    expansion: Sequence[float] | np.ndarray,
 ) -> np.ndarray:
     """E delta_{t+1} <= eta_t E delta_t + 2 alpha_t L / n from delta_0 = 0; returns t = 0..T.
 
@@ -186,11 +188,11 @@ def expected_divergence(
 
 
 def pathwise_divergence(
-    step_sizes: Sequence[float],
-    batch_sizes: Sequence[int],
-    hits: Sequence[int],
+    step_sizes: Sequence[float] | np.ndarray,
+    batch_sizes: Sequence[int] | np.ndarray | int,
+    hits: Sequence[int] | np.ndarray,
     lipschitz: float,
-    expansion: Sequence[float],
+    expansion: Sequence[float] | np.ndarray,
 ) -> np.ndarray:
     """delta_{t+1} <= ((b_t - m_t) eta_t + m_t min(eta_t, 1)) / b_t delta_t + 2 alpha_t L m_t / b_t.
 
@@ -207,7 +209,9 @@ def pathwise_divergence(
     return _trajectory(*_pathwise_factors(a, b, m, _positive("lipschitz", lipschitz), eta))
 
 
-def _flat_batches(batch_indices: Sequence[Sequence[int]], b: np.ndarray, n: int) -> np.ndarray:
+def _flat_batches(
+    batch_indices: Sequence[Sequence[int] | np.ndarray] | np.ndarray, b: np.ndarray, n: int
+) -> np.ndarray:
     """One array of all steps' indices; accepts T arrays, a (T, b) array, or the flat 1-D array."""
     if isinstance(batch_indices, np.ndarray) and batch_indices.ndim == 2:
         if batch_indices.shape[0] != b.size or np.any(b != batch_indices.shape[1]):
@@ -232,12 +236,12 @@ def _flat_batches(batch_indices: Sequence[Sequence[int]], b: np.ndarray, n: int)
 
 
 def all_index_pathwise(
-    step_sizes: Sequence[float],
-    batch_sizes: Sequence[int],
-    batch_indices: Sequence[Sequence[int]],
+    step_sizes: Sequence[float] | np.ndarray,
+    batch_sizes: Sequence[int] | np.ndarray | int,
+    batch_indices: Sequence[Sequence[int] | np.ndarray] | np.ndarray,
     n: int,
     lipschitz: float,
-    expansion: Sequence[float],
+    expansion: Sequence[float] | np.ndarray,
 ) -> np.ndarray:
     """Final pathwise bound (pathwise_divergence at step T) for every training index j = 0..n-1.
 
@@ -286,8 +290,8 @@ def _all_index(
 
 
 def nonconvex_schedule_bound(
-    step_sizes: Sequence[float],
-    batch_sizes: Sequence[int],
+    step_sizes: Sequence[float] | np.ndarray,
+    batch_sizes: Sequence[int] | np.ndarray | int,
     n: float,
     lipschitz: float,
     smoothness: float,
@@ -357,15 +361,15 @@ class RunBounds:
 def assess_run(
     *,
     regime: str,
-    step_sizes: Sequence[float],
-    batch_sizes: Sequence[int],
+    step_sizes: Sequence[float] | np.ndarray,
+    batch_sizes: Sequence[int] | np.ndarray | int,
     n: int,
     lipschitz: float,
     smoothness: float | None,
     strong_convexity: float = 0.0,
     loss_bound: float | None = None,
-    shadow_hits: Sequence[Sequence[int]] = (),
-    batch_indices: Sequence[Sequence[int]] | None = None,
+    shadow_hits: Sequence[Sequence[int] | np.ndarray] | np.ndarray = (),
+    batch_indices: Sequence[Sequence[int] | np.ndarray] | np.ndarray | None = None,
     delta: float = 0.05,
     not_applicable_reason: str = "",
 ) -> RunBounds:
@@ -404,6 +408,7 @@ def assess_run(
             _fails(reason, MCDIARMID, ()),
         )  # fmt: skip
 
+    assert beta is not None  # check_regime gave a reason above when smoothness is not declared
     eta = _expansion_for(regime, a, beta, gamma)
     path = _final(*_pathwise_factors(a, b, hits, lipschitz, eta))
     if regime == "nonconvex":
@@ -415,7 +420,7 @@ def assess_run(
             assumptions,
         )
     else:
-        value = lipschitz * _final(eta, 2.0 * a * lipschitz / n)
+        value = lipschitz * float(_final(eta, 2.0 * a * lipschitz / n))
         expected = _holds(value, expected_source, assumptions + (_SAMPLING,))
         if flat is None:
             uniform = _fails("batch indices not recorded", uniform_source, assumptions)

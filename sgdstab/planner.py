@@ -13,6 +13,7 @@ import functools
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import cast
 
 import numpy as np
 from scipy import optimize, special
@@ -77,7 +78,10 @@ class Schedule:
     @property
     def horizon(self) -> int | None:
         """Last step the schedule defines (None: unlimited)."""
-        return int(self.total_steps) if self.kind == "cosine" else None
+        if self.kind != "cosine":
+            return None
+        assert self.total_steps is not None  # __post_init__ requires it for cosine
+        return int(self.total_steps)
 
     def with_peak(self, peak: float) -> Schedule:
         return dataclasses.replace(self, base_step_size=float(peak))
@@ -95,6 +99,7 @@ class Schedule:
         if self.kind == "step-decay":
             return base * float(self.decay_factor) ** ((t - 1) // int(self.decay_every))
         if self.kind == "cosine":
+            assert self.total_steps is not None  # __post_init__ requires it for cosine
             return base * (1 + np.cos(np.pi * (t - 1) / int(self.total_steps))) / 2
         return base / t
 
@@ -156,12 +161,14 @@ class _Recorded:
         return f"{self.horizon} given step sizes (largest {self.peak:.6g})"
 
 
-def _as_schedule(schedule: Schedule | float | Sequence[float]) -> Schedule | _Recorded:
+def _as_schedule(
+    schedule: Schedule | _Recorded | float | Sequence[float] | np.ndarray,
+) -> Schedule | _Recorded:
     if isinstance(schedule, (Schedule, _Recorded)):
         return schedule
-    if np.ndim(schedule) == 0:
-        return Schedule("constant", _positive("step size", schedule))
-    values = _step_sizes(schedule).copy()
+    if np.ndim(schedule) == 0:  # a number: _positive converts it with float()
+        return Schedule("constant", _positive("step size", cast(float, schedule)))
+    values = _step_sizes(cast("Sequence[float] | np.ndarray", schedule)).copy()
     if values.size == 0 or values.max() <= 0:
         raise ValueError("a given schedule needs at least one step size > 0")
     values.flags.writeable = False
@@ -253,6 +260,7 @@ def planned_bounds(
         curve = lipschitz * _trajectory(1.0 - a * gamma, 2.0 * a * lipschitz / n)
         stability = [_holds(curve[t], source, assumptions + (_SAMPLING,)) for t in horizons]
     else:
+        assert beta is not None  # check_regime gave a reason above when smoothness is not declared
         stability = [
             nonconvex_schedule_bound(sched.step_sizes(t), batch, n, lipschitz, beta, loss_bound)
             for t in horizons
@@ -314,6 +322,12 @@ def _last_true(ok: Callable[[int], bool], lo: int, hi: int, guess: int | None = 
     return good
 
 
+def _value(bound: Bound) -> float:
+    """The value of a bound the caller knows to apply (its conditions were checked already)."""
+    assert bound.value is not None, bound.reason
+    return bound.value
+
+
 def _stability_target(target: float, bound: str, n: float, loss_bound, delta) -> float:
     """The eps_stab whose high-probability gap equals target (inverse of high_probability_gap)."""
     if bound == "stability":
@@ -356,15 +370,18 @@ def max_steps(
     plan = _plan_answer("steps", target, bound, first.source)
     if not first.applicable:
         return plan(None, False, first.reason)
-    if at(0).value > target:
-        return plan(None, True, f"even 0 steps give a {bound} bound of {at(0).value:.6g} > target")
+    at_zero = _value(at(0))
+    if at_zero > target:
+        return plan(None, True, f"even 0 steps give a {bound} bound of {at_zero:.6g} > target")
     constant = sched.kind == "constant"
     n_value, lipschitz_value = float(n), float(lipschitz)
     eps = _stability_target(target, bound, n_value, loss_bound, delta)
     guess, limit = None, None
     if regime == "convex" and constant:
         guess = math.floor(eps * n_value / (2 * lipschitz_value**2 * sched.peak))
-    elif regime == "convex" and sched.kind == "step-decay" and sched.decay_factor < 1:
+    elif regime == "convex" and isinstance(sched, Schedule) and sched.kind == "step-decay" and (
+        sched.decay_factor < 1
+    ):
         total = sched.peak * sched.decay_every / (1 - sched.decay_factor)
         limit = _convex_value(total, n_value, lipschitz_value)
     elif regime == "strongly_convex" and constant:
@@ -381,7 +398,7 @@ def max_steps(
 
     def ok(t: int) -> bool:
         b = at(t)
-        return b.applicable and b.value <= target
+        return b.applicable and _value(b) <= target
 
     best = _last_true(ok, 0, hi, None if guess is None else max(0, min(guess, hi)))
     note = ""
@@ -399,9 +416,9 @@ def max_steps(
 def _limit_value(stability_limit: float, problem: dict) -> float:
     if problem["bound"] == "stability":
         return stability_limit
-    return high_probability_gap(
-        stability_limit, problem["n"], problem["loss_bound"], problem["delta"]
-    ).value
+    return _value(
+        high_probability_gap(stability_limit, problem["n"], problem["loss_bound"], problem["delta"])
+    )
 
 
 def _plan_answer(quantity: str, target: float, bound: str, source: str):
@@ -460,21 +477,25 @@ def max_step_size(
     plan = _plan_answer("step_size", target, bound, floor.source)
     if not floor.applicable:
         return plan(None, False, floor.reason)
-    if floor.value > target:
-        return plan(None, True, f"even vanishing step sizes give {floor.value:.6g} > target")
+    if _value(floor) > target:
+        return plan(None, True, f"even vanishing step sizes give {_value(floor):.6g} > target")
     cap, label = _step_size_cap(regime, smoothness, gamma)
     if cap is not None:
-        if at(cap).value <= target:
+        if _value(at(cap)) <= target:
             note = f"capped by the condition peak step size <= {label} = {cap:.6g}"
             return plan(cap, True, "", bound_at_value=at(cap).value, note=note)
         hi = cap
-    else:  # nonconvex: the t0 = T branch, M min(1, T b / n), does not grow with the step size
-        saturated = float(loss_bound) * min(1.0, steps * int(batch_size) / float(n))
-        if _limit_value(saturated, problem) <= target:
-            note = "the bound saturates at M min(1, T b / n) within target: any step size"
-            return plan(None, True, "", unbounded=True, note=note)
+    else:
+        # Non-convex: the t0 = T branch, M min(1, T b / n), does not grow with the step size.
+        # (Convex without a declared smoothness also lands here; its bound grows without limit.)
+        if regime == "nonconvex":
+            assert loss_bound is not None  # planned_bounds does not apply without M here
+            saturated = float(loss_bound) * min(1.0, steps * int(batch_size) / float(n))
+            if _limit_value(saturated, problem) <= target:
+                note = "the bound saturates at M min(1, T b / n) within target: any step size"
+                return plan(None, True, "", unbounded=True, note=note)
         hi = shape.peak
-        while at(hi).value <= target:
+        while _value(at(hi)) <= target:
             hi *= 2
     guess = None
     if regime == "convex" and bound == "stability":
@@ -482,10 +503,10 @@ def max_step_size(
             shape.with_peak(1.0).total_step_size(steps), float(n), float(lipschitz)
         )
         guess = min(target / unit, hi)
-    if guess is None or at(guess).value > target:
-        guess = optimize.brentq(lambda x: at(x).value - target, hi * 1e-300, hi, rtol=1e-14)
+    if guess is None or _value(at(guess)) > target:
+        guess = optimize.brentq(lambda x: _value(at(x)) - target, hi * 1e-300, hi, rtol=1e-14)
     for _ in range(60):  # make sure the answer meets the target despite round-off
-        if at(guess).value <= target:
+        if _value(at(guess)) <= target:
             break
         guess = guess * (1 - 2**-40)
     return plan(guess, True, "", bound_at_value=at(guess).value)
@@ -523,7 +544,7 @@ def min_train_size(
         return plan(None, False, at(2).reason)
 
     def too_big(size: int) -> bool:
-        return at(size).value > target
+        return _value(at(size)) > target
 
     if not too_big(2):
         return plan(2, True, "", bound_at_value=at(2).value, note="n = 2 is the smallest size")
@@ -531,12 +552,14 @@ def min_train_size(
     if too_big(hi):
         return plan(None, True, f"even n = {hi} gives {at(hi).value:.6g} > target")
     if regime != "nonconvex" and bound == "stability":
-        guess = math.ceil(2 * at(2).value / target)
+        guess = math.ceil(2 * _value(at(2)) / target)
     else:
         upper = 4
         while too_big(upper):
             upper *= 4
-        root = optimize.brentq(lambda x: at(x).value - target, max(2, upper / 4), upper, rtol=1e-14)
+        root = optimize.brentq(
+            lambda x: _value(at(x)) - target, max(2, upper / 4), upper, rtol=1e-14
+        )
         guess = math.ceil(root)
     best = _last_true(too_big, 2, hi, max(2, min(guess - 1, hi))) + 1
     return plan(best, True, "", bound_at_value=at(best).value)

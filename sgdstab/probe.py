@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from types import TracebackType
 from typing import Any
 
 import numpy as np
@@ -66,7 +67,8 @@ class evaluation_mode:
         self.model.eval()
         return self.model
 
-    def __exit__(self, *exc: object) -> None:
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 traceback: TracebackType | None) -> None:
         for module, flag in self.flags:
             module.training = flag
         with torch.no_grad():
@@ -75,9 +77,10 @@ class evaluation_mode:
                 if tensor.shape == saved.shape:
                     tensor.copy_(saved)
                 else:
-                    tensor.set_(saved)
-        self.rng.__exit__(*exc)
-        self.no_grad.__exit__(*exc)
+                    # set_(Tensor) is documented; torch's stubs list only the storage overloads
+                    tensor.set_(saved)  # type: ignore[call-overload]
+        self.rng.__exit__(exc_type, exc, traceback)
+        self.no_grad.__exit__(exc_type, exc, traceback)
 
 
 class PerExampleLoss:
@@ -101,6 +104,7 @@ class PerExampleLoss:
         if self.step_loss is not None:
             return self.step_loss(model, batch)
         inputs, targets = self._pair(batch)
+        assert self.loss_fn is not None  # step_loss is None only when loss_fn was given
         return self.loss_fn(model(inputs), targets)
 
     @staticmethod
@@ -114,8 +118,11 @@ class PerExampleLoss:
         """``step_loss`` on each row as a one-row batch, all rows at once (vmap), or None."""
         from torch.func import vmap
 
+        step_loss = self.step_loss
+        assert step_loss is not None  # self.mapped starts False when there is no step_loss
+
         def one_row(row: Any) -> torch.Tensor:
-            return self.step_loss(model, tree_map(lambda t: t.unsqueeze(0), row)).reshape(())
+            return step_loss(model, tree_map(lambda t: t.unsqueeze(0), row)).reshape(())
 
         try:
             leaves = tree_flatten(batch)[0]
@@ -136,6 +143,7 @@ class PerExampleLoss:
                 return values
         if self.vectorised is not False:
             inputs, targets = self._pair(batch)
+            assert self.loss_fn is not None  # self.vectorised starts False without a loss_fn
             try:
                 losses = self.loss_fn(model(inputs), targets, reduction="none")
                 ok = isinstance(losses, torch.Tensor) and losses.dim() >= 1 and \
@@ -145,9 +153,9 @@ class PerExampleLoss:
             self.vectorised = ok
             if ok:
                 return losses.reshape(length, -1).double().mean(dim=1).cpu().numpy()
-        values = [float(self._one(model, select_rows(batch, slice(r, r + 1), length)))
-                  for r in range(length)]
-        return np.asarray(values, dtype=np.float64)
+        rows = [float(self._one(model, select_rows(batch, slice(r, r + 1), length)))
+                for r in range(length)]
+        return np.asarray(rows, dtype=np.float64)
 
 
 def model_losses(model: nn.Module, probe: ProbeRows, per_example: PerExampleLoss) -> np.ndarray:

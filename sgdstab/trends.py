@@ -64,7 +64,7 @@ class TrainingPlan:
 # Readings in
 # ---------------------------------------------------------------------------------------------
 
-_EMPTY = {"divergence": (), "audit_divergence": None, "layer_divergence": {},
+_EMPTY: dict[str, Any] = {"divergence": (), "audit_divergence": None, "layer_divergence": {},
           "loss_difference_max": None, "loss_difference_mean": None, "gap_estimate": None,
           "gap_stderr": None, "train_loss": None, "holdout_loss": None}
 

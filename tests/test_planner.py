@@ -113,6 +113,17 @@ def test_max_step_size_closed_form_and_cap():
     assert planner.max_step_size(0.25, steps=100, **nonconvex).unbounded
 
 
+def test_max_step_size_convex_without_smoothness_has_no_saturation():
+    # Convex with beta undeclared: no step-size cap, and (2 L^2 / n) T alpha grows without limit,
+    # so a declared M must not make the answer "any step size" (it did, and without M it raised).
+    # alpha = target n / (2 L^2 T) = 0.1 * 100 / (2 * 10) = 0.5, as in the closed form above.
+    problem = dict(regime="convex", n=100, lipschitz=1.0, steps=10)
+    for extra in ({}, {"loss_bound": 1.0}):
+        answer = planner.max_step_size(0.1, **problem, **extra)
+        assert not answer.unbounded and answer.value == pytest.approx(0.5, rel=1e-9)
+        assert answer.bound_at_value <= 0.1
+
+
 @pytest.mark.parametrize("name", sorted(PROBLEMS))
 def test_min_train_size_inverts_the_bound(name):
     problem = dict(PROBLEMS[name])
