@@ -43,7 +43,7 @@ def _to_cpu(value: Any) -> Any:
     if isinstance(value, Mapping):
         items = {key: _to_cpu(item) for key, item in value.items()}
         try:
-            return type(value)(items)
+            return type(value)(items)  # type: ignore[call-arg]  # dict-like classes take a dict
         except TypeError:
             return items
     if isinstance(value, tuple) and hasattr(value, "_fields"):

@@ -195,7 +195,7 @@ class SpreadStabilityTracker(StabilityTracker):
         rows = sorted({0, self.dataset_size // 2, self.dataset_size - 1})
         with preserved_rng():
             sample = [data[j] for j in rows]
-            replacements = self.replacements
+            replacements: Any = self.replacements   # a map-style dataset with len
             extra = [] if replacements is None or len(replacements) == 0 else \
                 [len(replacements), replacements[0], replacements[len(replacements) - 1]]
         groups = [{key: value for key, value in group.items() if key != "params"}
@@ -210,7 +210,7 @@ class SpreadStabilityTracker(StabilityTracker):
             "options": _digest(self.delta, self.lazy_fork, self.probe_size, requested,
                                self.engine.name, constants, self.loss_bound, self.estimate_every,
                                sorted(self.estimate_options.items()), options.get("audit", True),
-                               self.probe_set is not None and len(self.probe_set)),
+                               self.probe_set is not None and len(self.probe_set)),  # type: ignore[arg-type]  # noqa: E501
             "optimizer": _digest(type(self.optimizer).__name__, groups),
             "model (parameters and buffers)": _model_digest(self.model),
             "data (n and a few rows)": _digest(self.dataset_size, rows, sample, extra),
@@ -302,6 +302,7 @@ class SpreadStabilityTracker(StabilityTracker):
 
     def _probe_summary(self) -> tuple[measure.ProbeSummary, np.ndarray, float | None]:
         probe, per_example, engine = self._probe, self._per_example, self.engine
+        assert probe is not None   # finish_epoch builds it first
         main = model_losses(self.model, probe, per_example)
         losses: dict[int, np.ndarray | None] = {}
         for k in self.held_shadows():
@@ -350,7 +351,8 @@ class SpreadStabilityTracker(StabilityTracker):
     @contextmanager
     def _checkpoint_view(self) -> Iterator[None]:
         engine = self.engine
-        self.engine = _HeldHere(engine)
+        # a stand-in with the same checkpoint methods as the engine it wraps
+        self.engine = _HeldHere(engine)  # type: ignore[assignment]
         try:
             yield
         finally:

@@ -249,6 +249,7 @@ class StabilityTracker:
                 raise LockstepError("loss_fn expects (inputs, targets) batches; for other batch "
                                     "structures pass step_loss=(model, batch) -> loss")
             inputs, targets = batch
+            assert self.loss_fn is not None   # the constructor requires loss_fn or step_loss
             loss = self.loss_fn(model(inputs), targets)
         if not isinstance(loss, torch.Tensor) or loss.numel() != 1:
             raise LockstepError("the loss must be a scalar tensor (mean-reduced), got "
@@ -566,6 +567,7 @@ class StabilityTracker:
     def _probe_summary(self) -> tuple[measure.ProbeSummary, np.ndarray, float | None]:
         """The probe's summary, the main run's training-row losses and the largest loss (a
         spread tracker gathers the shadows' losses from every rank)."""
+        assert self._probe is not None   # finish_epoch builds it first
         return measure.probe_summary(self.model, self.engine, self.shadows, self._probe,
                                      self._per_example, has_probe_set=self.probe_set is not None)
 
