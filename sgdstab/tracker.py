@@ -137,7 +137,7 @@ class StabilityTracker:
         self._rng = np.random.default_rng(self.seed)
         self.specs = self._neighbour_specs(shadows, swap)
         self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
-                                  shadows=len(self.specs) + int(bool(audit)))
+                                  shadows=len(self.specs) + int(bool(audit)), loss_fn=loss_fn)
         self.shadows: list[Shadow] = [self.engine.add_shadow(spec, None, f"shadow_{k}")
                                       for k, spec in enumerate(self.specs)]
         self.audit_shadow: Shadow | None = None
@@ -333,6 +333,8 @@ class StabilityTracker:
             notes.append(f"{len(self._group.batches)} batch(es) yielded after the last "
                          "optimizer.step() belong to no step")
         self.epoch += 1
+        notes += getattr(self.engine, "pending_notes", [])   # e.g. what engine="auto" chose
+        getattr(self.engine, "pending_notes", []).clear()
         self._report_faults(self.engine.freeze_non_finite(self.shadows, self.steps))
         divergence, layer, audit = self._divergences()
         divergence = measure.masked_faults(divergence, self.shadows)
@@ -416,6 +418,11 @@ class StabilityTracker:
         restore_tracker(self, state)
 
     # -- misc -----------------------------------------------------------------------------------
+    @property
+    def engine_choice(self) -> str:
+        """Which engine steps the shadows and why (with engine="auto": what the timing found)."""
+        return str(getattr(self.engine, "choice", self.engine.name))
+
     def describe(self) -> dict[str, Any]:
         """The run's configuration, JSON-friendly (written to run.json)."""
         return {
