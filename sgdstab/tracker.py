@@ -372,10 +372,14 @@ class StabilityTracker:
 
         Estimates are refreshed at the end of every ``estimate_every``-th epoch (and the first),
         on a seeded sample of training examples, with ``estimate_options`` passed to
-        ``Constants.estimate`` (e.g. ``iterations``, ``per_example``).
+        ``Constants.estimate`` (e.g. ``iterations``, ``per_example``). Not estimated (None) when
+        no bound applies to the optimizer, unless ``estimate_options`` has
+        ``even_if_not_applicable=True``.
         """
         if not self.estimate_constants:
             return self.declared_constants
+        if measure.estimation_skipped(self.optimizer_reason, self.estimate_options):
+            return None   # no bound applies to this optimizer: the reading says so
         if self._estimated is None or (self.epoch - 1) % self.estimate_every == 0:
             chosen = measure.constants_rows(self.n, self.probe_size, self.seed)
             batch = self._collate([self._fetch(self.train_set, j) for j in chosen])
