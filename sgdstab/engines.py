@@ -139,21 +139,19 @@ def make_engine(kind: str, model: nn.Module, optimizer: torch.optim.Optimizer, l
     refused = stacked_refusal(model, optimizer, loss_fn)
     if kind == "auto":
         override = os.environ.get(AUTO_OVERRIDE_VARIABLE, "").strip()
-        if override == "per_shadow" or (override != "stacked" and refused):
+        if override == "per_shadow" or refused:
             why = (f"set by the environment variable {AUTO_OVERRIDE_VARIABLE}"
                    if override == "per_shadow" else
                    f"the stacked engine cannot step this run ({refused}); the vmap engine is "
                    "not chosen automatically (its null-swap audit is not guaranteed exact)")
             return _chosen(PerShadowEngine(model, optimizer, loss_of, before_step),
                            f"per_shadow: {why}")
-        if not refused:
-            assert loss_fn is not None
-            engine = StackedEngine(model, optimizer, loss_of, before_step, loss_fn=loss_fn,
-                                   auto=override != "stacked")
-            if override == "stacked":
-                engine.choice = f"stacked: set by the environment variable {AUTO_OVERRIDE_VARIABLE}"
-            return engine
-        kind = "stacked"
+        assert loss_fn is not None
+        engine = StackedEngine(model, optimizer, loss_of, before_step, loss_fn=loss_fn,
+                               auto=override != "stacked")
+        if override == "stacked":
+            engine.choice = f"stacked: set by the environment variable {AUTO_OVERRIDE_VARIABLE}"
+        return engine
     if kind == "per_shadow":
         return _chosen(PerShadowEngine(model, optimizer, loss_of, before_step),
                        "per_shadow: engine='per_shadow' was asked for")

@@ -29,7 +29,8 @@ if TYPE_CHECKING:
 
 __all__ = ["divergences", "divergence", "masked_faults", "default_probe_size", "build_probe",
            "fresh_replacements", "probe_summary", "settle_audit", "constants_rows",
-           "estimate_constants", "estimation_skipped", "ESTIMATE_ANYWAY", "epoch_bounds", "audit_assumptions", "epoch_reading"]
+           "estimate_constants", "estimation_skipped", "ESTIMATE_ANYWAY", "epoch_bounds",
+           "audit_assumptions", "epoch_reading"]
 
 
 # -- divergences --------------------------------------------------------------------------------

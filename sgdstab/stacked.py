@@ -109,6 +109,23 @@ class _Activation:
         return grad
 
 
+class _Dropout:
+    """``nn.Dropout``: every slot gets the mask the main run's module draws from the replayed RNG
+    state (drawn as torch's CPU dropout draws it: Bernoulli noise of the input's shape, divided
+    by 1 - p), as each shadow of the per-shadow engine does; checked once against autograd."""
+
+    def __init__(self, module: nn.Module) -> None:
+        self.module = module
+
+    def noise(self, a: torch.Tensor) -> torch.Tensor | None:
+        p = float(self.module.p)
+        if not self.module.training or p == 0.0:
+            return None
+        if not 0.0 < p < 1.0:
+            raise _CannotBatch(f"dropout probability {p} outside (0, 1)")
+        return torch.empty(a.shape[1:], dtype=a.dtype).bernoulli_(1 - p).div_(1 - p)
+
+
 def _chain(model: nn.Module, prefix: str = "") -> list[tuple[str, nn.Module]] | str:
     """The model's modules in the order its forward runs them, or why that order is unknown."""
     if isinstance(model, nn.Sequential):
@@ -124,12 +141,12 @@ def _chain(model: nn.Module, prefix: str = "") -> list[tuple[str, nn.Module]] | 
     return [(prefix, model)]
 
 
-def _plan(model: nn.Module) -> tuple[list[_Linear | _Activation], bool] | str:
+def _plan(model: nn.Module) -> tuple[list[_Linear | _Activation | _Dropout], bool] | str:
     """The layers (and whether the inputs are flattened first), or why the model is refused."""
     chain = _chain(model)
     if isinstance(chain, str):
         return chain
-    layers: list[_Linear | _Activation] = []
+    layers: list[_Linear | _Activation | _Dropout] = []
     flatten_first = False
     for prefix, module in chain:
         label = f"module {prefix[:-1]!r}" if prefix else "the model"
@@ -139,12 +156,14 @@ def _plan(model: nn.Module) -> tuple[list[_Linear | _Activation], bool] | str:
                                   None if module.bias is None else f"{prefix}bias"))
         elif kind in _ACTIVATIONS:
             layers.append(_Activation(_ACTIVATIONS[kind], module))
+        elif kind is nn.Dropout:
+            layers.append(_Dropout(module))
         elif kind is nn.Flatten and not any(isinstance(x, _Linear) for x in layers) and \
                 module.start_dim == 1 and module.end_dim == -1:
             flatten_first = True
         else:
-            return (f"{label} ({kind.__name__}) is not a Linear layer or an element-wise "
-                    "activation the stacked engine differentiates")
+            return (f"{label} ({kind.__name__}) is not a Linear layer, nn.Dropout or an "
+                    "element-wise activation the stacked engine differentiates")
     if not layers or not isinstance(layers[0], _Linear):
         return "the model does not start with a Linear layer"
     return layers, flatten_first
@@ -230,6 +249,7 @@ class _HandStepper(_StackStepper):
                 if positions.size:
                     hits[j] = (positions, substitute_rows(batch, member.row, positions.tolist(),
                                                           len(indices)))
+            torch.set_rng_state(rng_state)   # dropout masks as the main run drew them
             gradients, losses = self._one_batch(stack.parameters, batch, hits)
             if not self.verified and number == 0:
                 self._verify(views, batch, rng_state, gradients)
@@ -265,13 +285,19 @@ class _HandStepper(_StackStepper):
         else:
             x = x.unsqueeze(0).expand(slots, rows, fan_in)
         with torch.no_grad():
-            saved: list[tuple[torch.Tensor, torch.Tensor]] = []   # (input, output) per layer
+            saved: list[tuple[torch.Tensor, Any]] = []   # (input, output or noise) per layer
             a = x
             for layer in self.layers:
                 if isinstance(layer, _Linear):
                     out = torch.bmm(a, parameters[layer.weight].transpose(1, 2))
                     if layer.bias is not None:
                         out += parameters[layer.bias].unsqueeze(1)
+                elif isinstance(layer, _Dropout):
+                    noise = layer.noise(a)
+                    out = a if noise is None else a * noise
+                    saved.append((a, noise))   # type: ignore[arg-type]
+                    a = out
+                    continue
                 else:
                     out = layer.forward(a)
                 saved.append((a, out))
@@ -291,6 +317,9 @@ class _HandStepper(_StackStepper):
                         gradients[layer.bias] = grad.sum(1)
                     if number:
                         grad = torch.bmm(grad, parameters[layer.weight])
+                elif isinstance(layer, _Dropout):
+                    if a_out is not None:
+                        grad = grad * a_out
                 else:
                     grad = layer.backward(grad, a_in, a_out)
         return gradients, losses

@@ -438,7 +438,7 @@ def test_batched_state_round_trips_through_torch_save_and_resumes_exactly(tmp_pa
 # -- the factory --------------------------------------------------------------------------------
 def test_make_engine_choices(monkeypatch):
     assert ENGINES == ("auto", "stacked", "batched", "per_shadow")
-    model = mlp()   # with dropout: the stacked engine does not take it
+    model = nn.Sequential(nn.Linear(5, 4), nn.BatchNorm1d(4), nn.Linear(4, 2))  # not stacked
     opt = torch.optim.SGD(model.parameters(), lr=0.1)
 
     def loss(m, b):
@@ -450,8 +450,10 @@ def test_make_engine_choices(monkeypatch):
     # auto never takes the vmap engine (its audit need not be exact); this model is not stacked
     engine = make_engine("auto", model, opt, loss, None, shadows=9, loss_fn=F.cross_entropy)
     assert isinstance(engine, PerShadowEngine)
-    assert "Dropout" in engine.choice and "vmap" in engine.choice
-    assert isinstance(make_engine("batched", model, opt, loss, None, shadows=1), BatchedEngine)
+    assert "BatchNorm1d" in engine.choice and "vmap" in engine.choice
+    plain = mlp()
+    assert isinstance(make_engine("batched", plain, torch.optim.SGD(plain.parameters(), lr=0.1),
+                                  loss, None, shadows=1), BatchedEngine)
     with pytest.raises(LockstepError, match="engine must be one of"):
         make_engine("vectorised", model, opt, loss, None, shadows=2)
 
@@ -475,7 +477,7 @@ def test_auto_steps_convolutions_one_by_one_because_batched_ones_need_not_be_exa
     tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data,
                                shadows=8, engine="auto")
     assert isinstance(tracker.engine, PerShadowEngine)
-    assert "Conv1d" in tracker.engine_choice
+    assert "_TinyConv" in tracker.engine_choice and "vmap" in tracker.engine_choice
     reading = train(model, opt, loader(data), epochs=1, tracker=tracker)[0]
     assert reading.audit_divergence == 0.0
     # What auto avoids: batched stepping of this Conv1d drifts on the null swap (measured 3e-8
