@@ -177,7 +177,8 @@ def _known_loss(loss_fn: Any) -> str:
     if loss_fn is F.mse_loss:
         return "mse"
     if type(loss_fn) is nn.CrossEntropyLoss and loss_fn.weight is None and \
-            loss_fn.reduction == "mean" and loss_fn.label_smoothing == 0.0:
+            loss_fn.reduction == "mean" and loss_fn.label_smoothing == 0.0 and \
+            loss_fn.ignore_index == -100:
         return "cross_entropy"
     if type(loss_fn) is nn.MSELoss and loss_fn.reduction == "mean":
         return "mse"
