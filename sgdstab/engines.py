@@ -12,9 +12,9 @@ they cannot follow.
 the run's own batch at the first step after the shadows fork, keeping the faster
 (``StackedEngine.choice`` says which and why); every other model steps one by one. It never
 picks the vmap engine: vmap's batched kernels need not round every slot alike (a Conv1d model
-measured a null-swap drift of 3e-8 from its reference, and a 4-feature softmax model 2e-17 to
-2e-16 on 3 of 22 runs), so its null-swap audit is not guaranteed exact, and it measured no faster
-than per-shadow stepping in ``benchmarks/overhead.py``.
+measured a null-swap drift of 3e-8 from its reference, and a 4-feature softmax model was
+reported to drift 2e-17 to 2e-16 on 3 of 22 runs), so its null-swap audit is not guaranteed
+exact, and it measured no faster than per-shadow stepping in ``benchmarks/overhead.py``.
 """
 
 from __future__ import annotations

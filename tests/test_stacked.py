@@ -135,8 +135,8 @@ def test_null_swaps_read_exactly_zero_in_the_stacked_engine():
 def test_softmax_audit_reads_exactly_zero_over_seeds(engine, monkeypatch):
     """A 4-feature softmax regression (scikit-learn's bundled iris data: 150 flowers, 4
     measurements, 3 species) over several seeds: the null-swap audit must read exactly 0.0 in
-    the engines auto may choose (the vmap engine drifted 2e-17 - 2e-16 on 3 of 22 such runs
-    elsewhere, which is why auto never picks it)."""
+    the engines auto may choose (the vmap engine was reported to drift 2e-17 - 2e-16 on 3 of 22
+    such runs elsewhere, which is why auto never picks it)."""
     datasets = pytest.importorskip("sklearn.datasets")
     features, labels = datasets.load_iris(return_X_y=True)
     x = torch.tensor(features, dtype=torch.float32)
