@@ -270,7 +270,9 @@ class BatchedEngine:
             return []
         if not shadows and all(s.forked for s in self.shadows):
             return []   # nothing is, or will be, measured against the reference any more
-        members = [self.reference, *shadows]
+        # the null-swap audit right after the reference: both then sit at the start of every
+        # stacked tensor, where element-wise kernels take the same (vectorised) path for them
+        members = [self.reference, *sorted(shadows, key=lambda s: s.spec.origin != "self")]
         ids = [id(m) for m in members]
         if self._stack is None or [id(m) for m in self._stack.members] != ids or \
                 any(i not in self._stack.slot for i in ids):

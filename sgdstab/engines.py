@@ -1,21 +1,26 @@
-"""Choosing the shadow engine: batched (stacked tensors, one vmapped step) or per-shadow.
+"""Choosing the shadow engine: stacked, per-shadow, or batched (vmap).
 
 ``"per_shadow"`` steps each shadow as its own module with its own optimizer: exact for any
-optimizer and model. ``"batched"`` (``sgdstab.batched``) steps all forked shadows together; it is
-exact for element-wise optimizers and models that are pure functions of their parameters, and falls
-back to per-shadow stepping, with an ``EngineFallbackWarning`` saying why, for anything else.
-``"auto"`` picks batched stepping only where it measured faster and exact
-(``benchmarks/overhead.py``, 2-core CPU): from ``AUTO_BATCHED_FROM`` runs (shadows plus the audit),
-with at least ``AUTO_MIN_THREADS`` torch threads (K=8, batch 32: 0.79x the per-shadow epoch on 2
-threads, 0.93-1.09x on one; K=4 is slower batched everywhere, partly because the batched engine
-also carries a no-swap reference run), and for models without convolutions: vmap runs them as
-grouped convolutions, which need not round every slot alike (a Conv1d model measured a null-swap
-drift of 3e-8) and were slower on batches of 256 (1.2x per-shadow).
+optimizer and model. ``"stacked"`` (``sgdstab.stacked``) steps all forked shadows of a model made
+of Linear layers and element-wise activations as batched matrix products with a hand-written
+backward; ``"batched"`` (``sgdstab.batched``) steps them together with ``vmap`` for other models
+that are pure functions of their parameters. Both stacked engines need an element-wise optimizer
+and fall back to per-shadow stepping, with an ``EngineFallbackWarning`` saying why, for anything
+they cannot follow.
+
+``"auto"`` takes the stacked engine where it can run and times it against per-shadow stepping on
+the run's own batch at the first step after the shadows fork, keeping the faster
+(``StackedEngine.choice`` says which and why); every other model steps one by one. It never
+picks the vmap engine: vmap's batched kernels need not round every slot alike (a Conv1d model
+measured a null-swap drift of 3e-8 from its reference, and a 4-feature softmax model was
+reported to drift 2e-17 to 2e-16 on 3 of 22 runs), so its null-swap audit is not guaranteed
+exact, and it measured no faster than per-shadow stepping in ``benchmarks/overhead.py``.
 """
 
 from __future__ import annotations
 
 import functools
+import os
 import warnings
 from collections.abc import Callable
 from typing import Any
@@ -27,12 +32,13 @@ from torch.func import vmap
 
 from .batched import BatchedEngine, EngineFallbackWarning
 from .lockstep import LockstepError, LossOf, PerShadowEngine
+from .stacked import AUTO_OVERRIDE_VARIABLE, StackedEngine, stacked_refusal
 
-__all__ = ["make_engine", "batched_refusal", "replayed_dropout_kinds", "auto_prefers_per_shadow",
-           "ENGINES", "ELEMENTWISE_OPTIMIZERS", "AUTO_BATCHED_FROM", "AUTO_MIN_THREADS",
+__all__ = ["make_engine", "batched_refusal", "stacked_refusal", "replayed_dropout_kinds",
+           "ENGINES", "ELEMENTWISE_OPTIMIZERS", "AUTO_OVERRIDE_VARIABLE",
            "EngineFallbackWarning"]
 
-ENGINES = ("auto", "batched", "per_shadow")
+ENGINES = ("auto", "stacked", "batched", "per_shadow")
 
 # Optimizers whose update of each parameter element depends only on that element's own gradient
 # and state (plus scalars shared by the whole group): stepping them over stacked tensors equals
@@ -42,11 +48,6 @@ ELEMENTWISE_OPTIMIZERS: tuple[type[torch.optim.Optimizer], ...] = (
     torch.optim.Adagrad, torch.optim.Adadelta, torch.optim.Adamax, torch.optim.NAdam,
     torch.optim.RAdam, torch.optim.Rprop, torch.optim.ASGD,
 )
-
-# "auto" uses the batched engine from this many runs (shadows plus the audit) and torch threads
-# on, for models without convolutions (see the module docstring).
-AUTO_BATCHED_FROM = 8
-AUTO_MIN_THREADS = 2
 
 _DROPOUT_CHECKS: dict[type[nn.Module], tuple[Callable[[torch.Tensor], torch.Tensor],
                                               tuple[int, ...]]] = {
@@ -121,41 +122,52 @@ def batched_refusal(model: nn.Module, optimizer: torch.optim.Optimizer) -> str:
     return ""
 
 
-def auto_prefers_per_shadow(runs: int, threads: int, model: nn.Module | None = None) -> str:
-    """Why ``engine="auto"`` steps ``runs`` runs of ``model`` one by one with ``threads`` torch
-    threads ('' when it takes the batched engine, subject to ``batched_refusal``)."""
-    if model is not None:
-        for name, module in model.named_modules():
-            if isinstance(module, nn.modules.conv._ConvNd):
-                return (f"module {name!r} is a convolution, which batched stepping need not "
-                        "round alike in every slot")
-    if runs < AUTO_BATCHED_FROM:
-        return (f"{runs} run(s) (shadows plus the audit) step faster one by one; batched "
-                f"stepping pays off from {AUTO_BATCHED_FROM}")
-    if threads < AUTO_MIN_THREADS:
-        return (f"with {threads} torch thread(s) batched stepping is no faster (it needs "
-                f"{AUTO_MIN_THREADS} or more to use its larger kernels)")
-    return ""
-
-
 def make_engine(kind: str, model: nn.Module, optimizer: torch.optim.Optimizer, loss_of: LossOf,
                 before_step: Callable[[nn.Module], Any] | None, *, shadows: int,
-                threads: int | None = None) -> PerShadowEngine | BatchedEngine:
-    """The engine for ``kind`` ("auto", "batched" or "per_shadow") and ``shadows`` runs;
-    ``threads`` (default ``torch.get_num_threads()``) informs the "auto" choice.
+                loss_fn: Callable[..., torch.Tensor] | None = None
+                ) -> PerShadowEngine | BatchedEngine:
+    """The engine for ``kind`` (one of ``ENGINES``) and ``shadows`` runs; ``loss_fn`` is the
+    user's ``loss_fn(outputs, targets)`` (None with a ``step_loss``), which the stacked engine
+    needs. The engine's ``choice`` attribute says which engine steps and why.
 
-    A batched request the run does not allow gives the per-shadow engine and an
-    ``EngineFallbackWarning`` naming the reason.
+    A stacked or batched request the run does not allow gives the per-shadow engine and an
+    ``EngineFallbackWarning`` naming the reason. With ``"auto"`` the environment variable
+    ``SGDSTAB_AUTO_ENGINE`` (``stacked`` or ``per_shadow``) fixes the choice instead of timing.
     """
     if kind not in ENGINES:
         raise LockstepError(f"engine must be one of {ENGINES}, got {kind!r}")
-    threads = torch.get_num_threads() if threads is None else int(threads)
-    if kind == "per_shadow" or (kind == "auto" and
-                                auto_prefers_per_shadow(shadows, threads, model)):
-        return PerShadowEngine(model, optimizer, loss_of, before_step)
-    reason = batched_refusal(model, optimizer)
+    refused = stacked_refusal(model, optimizer, loss_fn)
+    if kind == "auto":
+        override = os.environ.get(AUTO_OVERRIDE_VARIABLE, "").strip()
+        if override == "per_shadow" or refused:
+            why = (f"set by the environment variable {AUTO_OVERRIDE_VARIABLE}"
+                   if override == "per_shadow" else
+                   f"the stacked engine cannot step this run ({refused}); the vmap engine is "
+                   "not chosen automatically (its null-swap audit is not guaranteed exact)")
+            return _chosen(PerShadowEngine(model, optimizer, loss_of, before_step),
+                           f"per_shadow: {why}")
+        assert loss_fn is not None
+        engine = StackedEngine(model, optimizer, loss_of, before_step, loss_fn=loss_fn,
+                               auto=override != "stacked")
+        if override == "stacked":
+            engine.choice = f"stacked: set by the environment variable {AUTO_OVERRIDE_VARIABLE}"
+        return engine
+    if kind == "per_shadow":
+        return _chosen(PerShadowEngine(model, optimizer, loss_of, before_step),
+                       "per_shadow: engine='per_shadow' was asked for")
+    reason = refused if kind == "stacked" else batched_refusal(model, optimizer)
     if reason:
         warnings.warn(f"engine={kind!r}: stepping shadows one by one, because {reason}",
                       EngineFallbackWarning, stacklevel=3)
-        return PerShadowEngine(model, optimizer, loss_of, before_step)
-    return BatchedEngine(model, optimizer, loss_of, before_step)
+        return _chosen(PerShadowEngine(model, optimizer, loss_of, before_step),
+                       f"per_shadow: the {kind} engine cannot step this run ({reason})")
+    if kind == "stacked":
+        assert loss_fn is not None
+        return StackedEngine(model, optimizer, loss_of, before_step, loss_fn=loss_fn)
+    return _chosen(BatchedEngine(model, optimizer, loss_of, before_step),
+                   "batched: engine='batched' was asked for")
+
+
+def _chosen(engine: Any, choice: str) -> Any:
+    engine.choice = choice
+    return engine

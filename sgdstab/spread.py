@@ -148,10 +148,10 @@ class SpreadStabilityTracker(StabilityTracker):
         self._monitored = dist.get_backend(shadow_group) == "gloo"
         self._source = dist.get_global_rank(shadow_group, 0)
         requested = options.get("engine", "auto")
-        if requested == "batched":
+        if requested in ("batched", "stacked"):
             raise LockstepError(
-                "engine='batched' with shadow_group: the batched engine's rounding depends on how "
-                "many shadows one process stacks (2 ranks holding 4 of K=8 each gave a gap "
+                f"engine={requested!r} with shadow_group: a stacked engine's rounding depends on "
+                "how many shadows one process stacks (2 ranks holding 4 of K=8 each gave a gap "
                 "estimate 1.3e-6 relative away from one process holding all 8), so the spread "
                 "reading would not equal the single-process one; spread trackers step their "
                 "shadows one by one (engine='per_shadow' or 'auto')")

@@ -179,7 +179,7 @@ class StabilityTracker:
         held = [self._holds(k) for k in range(len(self.specs))]
         audit = bool(audit) and self._holds(-1)
         self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
-                                  shadows=sum(held) + int(audit))
+                                  shadows=sum(held) + int(audit), loss_fn=loss_fn)
         self.shadows: list[Shadow] = [
             self.engine.add_shadow(spec, None, f"shadow_{k}") if held[k] else
             self._held_elsewhere(k, spec) for k, spec in enumerate(self.specs)]
@@ -533,6 +533,8 @@ class StabilityTracker:
         self._passes = 0
         self._steps_at_finish = self.steps
         self.epoch += 1
+        notes += getattr(self.engine, "pending_notes", [])   # e.g. what engine="auto" chose
+        getattr(self.engine, "pending_notes", []).clear()
         self._report_faults(self.engine.freeze_non_finite(self.shadows, self.steps))
         divergence, layer, audit = self._divergences()
         divergence = measure.masked_faults(divergence, self.shadows)
@@ -632,10 +634,14 @@ class StabilityTracker:
 
         Estimates are refreshed at the end of every ``estimate_every``-th epoch (and the first),
         on a seeded sample of training examples, with ``estimate_options`` passed to
-        ``Constants.estimate`` (e.g. ``iterations``, ``per_example``).
+        ``Constants.estimate`` (e.g. ``iterations``, ``per_example``). Not estimated (None) when
+        no bound applies to the optimizer, unless ``estimate_options`` has
+        ``even_if_not_applicable=True``.
         """
         if not self.estimate_constants:
             return self.declared_constants
+        if measure.estimation_skipped(self.optimizer_reason, self.estimate_options):
+            return None   # no bound applies to this optimizer: the reading says so
         if self._estimated is None or (self.epoch - 1) % self.estimate_every == 0:
             chosen = measure.constants_rows(self.n, self.probe_size, self.seed)
             if self.drawable is not None:
@@ -681,6 +687,11 @@ class StabilityTracker:
         restore_tracker(self, state)
 
     # -- misc -----------------------------------------------------------------------------------
+    @property
+    def engine_choice(self) -> str:
+        """Which engine steps the shadows and why (with engine="auto": what the timing found)."""
+        return str(getattr(self.engine, "choice", self.engine.name))
+
     def describe(self) -> dict[str, Any]:
         """The run's configuration, JSON-friendly (written to run.json)."""
         return {

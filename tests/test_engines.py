@@ -25,10 +25,8 @@ from torch.func import vmap
 from sgdstab import LockstepWarning, ShadowFaultWarning, StabilityTracker
 from sgdstab.batched import BatchedEngine
 from sgdstab.engines import (
-    AUTO_BATCHED_FROM,
     ENGINES,
     EngineFallbackWarning,
-    auto_prefers_per_shadow,
     batched_refusal,
     make_engine,
     replayed_dropout_kinds,
@@ -280,8 +278,8 @@ def test_fallback_notices_for_batchnorm_and_an_unknown_optimizer():
     assert isinstance(engine, PerShadowEngine)
     with pytest.warns(EngineFallbackWarning, match="in-place dropout"):
         inplace = nn.Sequential(nn.Linear(5, 4), nn.Dropout(0.2, inplace=True))
-        make_engine("auto", inplace, torch.optim.SGD(inplace.parameters(), lr=0.1),
-                    lambda m, b: m(b).sum(), None, shadows=AUTO_BATCHED_FROM, threads=2)
+        make_engine("batched", inplace, torch.optim.SGD(inplace.parameters(), lr=0.1),
+                    lambda m, b: m(b).sum(), None, shadows=8)
 
 
 def test_element_wise_optimizers_are_batched_without_notice():
@@ -292,8 +290,8 @@ def test_element_wise_optimizers_are_batched_without_notice():
         assert batched_refusal(model, optimizer) == ""
         with warnings.catch_warnings():
             warnings.simplefilter("error", EngineFallbackWarning)
-            engine = make_engine("auto", model, optimizer, lambda m, b: m(b).sum(), None,
-                                 shadows=AUTO_BATCHED_FROM, threads=2)
+            engine = make_engine("batched", model, optimizer, lambda m, b: m(b).sum(), None,
+                                 shadows=8)
         assert isinstance(engine, BatchedEngine)
 
 
@@ -438,9 +436,9 @@ def test_batched_state_round_trips_through_torch_save_and_resumes_exactly(tmp_pa
 
 
 # -- the factory --------------------------------------------------------------------------------
-def test_make_engine_choices():
-    assert ENGINES == ("auto", "batched", "per_shadow")
-    model = mlp()
+def test_make_engine_choices(monkeypatch):
+    assert ENGINES == ("auto", "stacked", "batched", "per_shadow")
+    model = nn.Sequential(nn.Linear(5, 4), nn.BatchNorm1d(4), nn.Linear(4, 2))  # not stacked
     opt = torch.optim.SGD(model.parameters(), lr=0.1)
 
     def loss(m, b):
@@ -448,16 +446,14 @@ def test_make_engine_choices():
 
     assert isinstance(make_engine("per_shadow", model, opt, loss, None, shadows=9),
                       PerShadowEngine)
-    assert isinstance(make_engine("auto", model, opt, loss, None,
-                                  shadows=AUTO_BATCHED_FROM - 1, threads=2), PerShadowEngine)
-    assert isinstance(make_engine("auto", model, opt, loss, None, shadows=AUTO_BATCHED_FROM,
-                                  threads=2), BatchedEngine)
-    # one torch thread: batched stepping measured no faster, so auto steps one by one
-    assert isinstance(make_engine("auto", model, opt, loss, None, shadows=AUTO_BATCHED_FROM,
-                                  threads=1), PerShadowEngine)
-    assert "thread" in auto_prefers_per_shadow(AUTO_BATCHED_FROM, 1)
-    assert auto_prefers_per_shadow(AUTO_BATCHED_FROM, 2) == ""
-    assert isinstance(make_engine("batched", model, opt, loss, None, shadows=1), BatchedEngine)
+    monkeypatch.delenv("SGDSTAB_AUTO_ENGINE", raising=False)
+    # auto never takes the vmap engine (its audit need not be exact); this model is not stacked
+    engine = make_engine("auto", model, opt, loss, None, shadows=9, loss_fn=F.cross_entropy)
+    assert isinstance(engine, PerShadowEngine)
+    assert "BatchNorm1d" in engine.choice and "vmap" in engine.choice
+    plain = mlp()
+    assert isinstance(make_engine("batched", plain, torch.optim.SGD(plain.parameters(), lr=0.1),
+                                  loss, None, shadows=1), BatchedEngine)
     with pytest.raises(LockstepError, match="engine must be one of"):
         make_engine("vectorised", model, opt, loss, None, shadows=2)
 
@@ -473,14 +469,15 @@ class _TinyConv(nn.Module):
         return self.head(torch.relu(self.conv(x.unsqueeze(1))).flatten(1))
 
 
-def test_auto_steps_convolutions_one_by_one_because_batched_ones_need_not_be_exact():
+def test_auto_steps_convolutions_one_by_one_because_batched_ones_need_not_be_exact(monkeypatch):
     data = pebbles(count=64)
     model = _TinyConv()
     opt = torch.optim.SGD(model.parameters(), lr=0.1)
-    assert "convolution" in auto_prefers_per_shadow(AUTO_BATCHED_FROM, 2, model)
+    monkeypatch.delenv("SGDSTAB_AUTO_ENGINE", raising=False)
     tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data,
-                               shadows=AUTO_BATCHED_FROM, engine="auto")
+                               shadows=8, engine="auto")
     assert isinstance(tracker.engine, PerShadowEngine)
+    assert "_TinyConv" in tracker.engine_choice and "vmap" in tracker.engine_choice
     reading = train(model, opt, loader(data), epochs=1, tracker=tracker)[0]
     assert reading.audit_divergence == 0.0
     # What auto avoids: batched stepping of this Conv1d drifts on the null swap (measured 3e-8
@@ -488,7 +485,7 @@ def test_auto_steps_convolutions_one_by_one_because_batched_ones_need_not_be_exa
     model, data = _TinyConv(), pebbles(count=64)
     opt = torch.optim.SGD(model.parameters(), lr=0.1)
     tracker = StabilityTracker(model, opt, loss_fn=F.cross_entropy, train_set=data,
-                               shadows=AUTO_BATCHED_FROM, engine="batched")
+                               shadows=8, engine="batched")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         reading = train(model, opt, loader(data), epochs=1, tracker=tracker)[0]
