@@ -62,7 +62,7 @@ class BatchedShadow(Shadow):
         super().__init__(spec, None, None, row, label)  # type: ignore[arg-type]
         self.state: SlotState | None = None
 
-    @property
+    @property  # type: ignore[override]
     def model(self) -> nn.Module | None:  # type: ignore[override]
         if self._own_model is not None or self._engine is None or \
                 self._engine._fallback is not None:

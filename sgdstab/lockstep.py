@@ -99,7 +99,7 @@ class HostRngGuard:
         python_state, numpy_state = states
         detected = False
         if self.mode is None and not self.used:
-            now = np.random.get_state()
+            now: Any = np.random.get_state()   # the legacy tuple (name, keys, pos, ...)
             if random.getstate() != python_state or now[2:] != numpy_state[2:] or \
                     not np.array_equal(now[1], numpy_state[1]):
                 self.used = detected = True
@@ -163,7 +163,7 @@ def substitute_rows(batch: Any, row: Any, positions: Sequence[int], rows: int, p
         changed = {key: substitute_rows(value, row[key], positions, rows, f"{path}[{key!r}]")
                    for key, value in batch.items()}
         try:
-            return type(batch)(changed)
+            return type(batch)(changed)  # type: ignore[call-arg]  # dict-like classes take a dict
         except TypeError:
             return changed
     if isinstance(batch, (list, tuple)):
@@ -273,12 +273,12 @@ class Shadow:
         return self.forked and self.fault is None
 
 
-def parameters_finite(params: list[torch.Tensor]) -> bool:
+def parameters_finite(params: Sequence[torch.Tensor]) -> bool:
     """Whether every parameter is finite, in one fused norm call (a norm that overflows, i.e.
     entries beyond ~1e19 in float32, counts as non-finite: such a run has diverged anyway)."""
     with torch.no_grad():
         try:
-            norms = torch._foreach_norm(params)
+            norms = torch._foreach_norm(list(params))
         except (AttributeError, RuntimeError):   # pragma: no cover - older or exotic builds
             return all(bool(torch.isfinite(p).all()) for p in params)
         return bool(torch.isfinite(torch.stack(norms)).all())
@@ -340,7 +340,8 @@ class PerShadowEngine:
             settings = {key: value for key, value in group.items() if key != "params"}
             groups.append({**settings, "params": [params[k] for k in positions]})
         try:
-            return type(self.main_optimizer)(groups)
+            # every torch optimizer takes its parameter groups first; defaults come from them
+            return type(self.main_optimizer)(groups)  # type: ignore[call-arg]
         except Exception as error:  # noqa: BLE001 - report the optimizer we cannot rebuild
             raise LockstepError(
                 f"cannot mirror optimizer {type(self.main_optimizer).__name__} over a shadow's "
@@ -387,10 +388,10 @@ class PerShadowEngine:
             for mine, theirs in zip(shadow.model.parameters(), self.main_model.parameters()):
                 mine.copy_(theirs)
             main_buffers = dict(self.main_model.named_buffers())
-            for name, mine in shadow.model.named_buffers():
+            for name, own in shadow.model.named_buffers():
                 source = buffers[name] if buffers is not None and name in buffers else \
                     main_buffers[name]
-                mine.copy_(source)
+                own.copy_(source)
         state = copy.deepcopy(self.main_optimizer.state_dict())
         shadow.optimizer.load_state_dict(state)
         shadow.forked = True

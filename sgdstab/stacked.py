@@ -68,14 +68,14 @@ class _Linear:
 class _Activation:
     def __init__(self, kind: str, module: nn.Module) -> None:
         self.kind = kind
-        self.module = module
+        self.module: Any = module   # its attributes (negative_slope, approximate, alpha) by kind
 
     def forward(self, z: torch.Tensor) -> torch.Tensor:
         m, kind = self.module, self.kind
         if kind == "relu":
             return torch.relu(z)
         if kind == "leaky_relu":
-            return F.leaky_relu(z, m.negative_slope)
+            return F.leaky_relu(z, float(getattr(m, "negative_slope", 0.01)))
         if kind == "tanh":
             return torch.tanh(z)
         if kind == "sigmoid":
@@ -115,7 +115,7 @@ class _Dropout:
     by 1 - p), as each shadow of the per-shadow engine does; checked once against autograd."""
 
     def __init__(self, module: nn.Module) -> None:
-        self.module = module
+        self.module: Any = module   # an nn.Dropout: p and training
 
     def noise(self, a: torch.Tensor) -> torch.Tensor | None:
         p = float(self.module.p)
@@ -452,8 +452,8 @@ class StackedEngine(BatchedEngine):
                                          s.row, s.label) for s in runs]
         for shadow in trial:
             stacked.fork(shadow, step, group.buffers)
-        for shadow in singles:
-            per_shadow.fork(shadow, step, group.buffers)
+        for single in singles:
+            per_shadow.fork(single, step, group.buffers)
         times: dict[str, list[float]] = {"stacked": [], "per_shadow": []}
         clock = time.perf_counter
         with warnings.catch_warnings():

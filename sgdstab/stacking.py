@@ -135,7 +135,7 @@ def _stack_states(members: list[BatchedShadow], states: Sequence[SlotState],
     for main_group, names in zip(main_optimizer.param_groups, group_names):
         settings = {key: value for key, value in main_group.items() if key != "params"}
         groups.append({**settings, "params": [parameters[n] for n in names if n in parameters]})
-    optimizer = type(main_optimizer)(groups)
+    optimizer = type(main_optimizer)(groups)  # type: ignore[call-arg]  # groups carry defaults
     for name in stepped:
         keys = [tuple(s.optimizer.get(name, {})) for s in states]
         if len(set(keys)) > 1:
