@@ -12,7 +12,6 @@ import json
 import math
 import os
 import signal
-import socket
 import subprocess
 import sys
 import time
@@ -25,6 +24,7 @@ import torch.distributed as dist
 from torch import nn
 
 from ._distributed_worker import buoy_readings, run_reference
+from ._launch import free_port, launch_ranks
 
 WORKER = Path(__file__).with_name("_distributed_worker.py")
 
@@ -32,44 +32,11 @@ pytestmark = pytest.mark.skipif(not dist.is_available() or not dist.is_gloo_avai
                                 reason="torch.distributed with gloo is not available")
 
 
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def _launch(config: dict, tmp_path: Path, world: int = 2, timeout: float = 120.0) -> list[dict]:
-    """Run ``world`` worker processes to completion (or kill them) and return their results."""
-    config_path = tmp_path / "config.json"
-    config_path.write_text(json.dumps({"timeout": 60, **config}), encoding="utf-8")
-    port = _free_port()
-    procs, logs = [], []
-    try:
-        for rank in range(world):
-            env = {**os.environ, "MASTER_ADDR": "127.0.0.1", "MASTER_PORT": str(port),
-                   "RANK": str(rank), "WORLD_SIZE": str(world), "GLOO_SOCKET_IFNAME": "lo",
-                   "OMP_NUM_THREADS": "1", "PYTHONFAULTHANDLER": "1"}
-            log = open(tmp_path / f"rank{rank}.log", "wb")   # noqa: SIM115 - closed below
-            logs.append(log)
-            procs.append(subprocess.Popen(
-                [sys.executable, str(WORKER), str(config_path), str(tmp_path / f"out{rank}.json")],
-                env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True))
-        deadline = time.monotonic() + timeout
-        for proc in procs:
-            proc.wait(timeout=max(1.0, deadline - time.monotonic()))
-    finally:
-        for proc in procs:
-            if proc.poll() is None:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait()
-        for log in logs:
-            log.close()
-    results = []
-    for rank, proc in enumerate(procs):
-        output = (tmp_path / f"rank{rank}.log").read_text(errors="replace")
-        assert proc.returncode == 0, f"rank {rank} failed:\n{output[-4000:]}"
-        results.append(json.loads((tmp_path / f"out{rank}.json").read_text(encoding="utf-8")))
-    return results
+    """Run ``world`` data-parallel worker processes to completion and return their results."""
+    results = launch_ranks(WORKER, config, tmp_path, world, timeout)
+    assert all(r is not None for r in results), "a rank exited 0 without writing its result"
+    return results  # type: ignore[return-value]
 
 
 def _sampler_global_batches(n: int, world: int, batch: int, seed: int, epoch: int) -> list:
@@ -263,7 +230,7 @@ def test_refuses_a_model_that_is_not_data_parallel():
 def test_torchrun_example_runs_on_two_cpu_processes(tmp_path):
     example = Path(__file__).parents[1] / "examples" / "data_parallel.py"
     command = [sys.executable, "-m", "torch.distributed.run", "--nnodes=1", "--nproc-per-node=2",
-               "--master-addr=127.0.0.1", f"--master-port={_free_port()}", str(example),
+               "--master-addr=127.0.0.1", f"--master-port={free_port()}", str(example),
                "--epochs", "2", "--shadows", "2", "--log-dir", str(tmp_path / "turbines")]
     env = {**os.environ, "OMP_NUM_THREADS": "1", "GLOO_SOCKET_IFNAME": "lo"}
     proc = subprocess.Popen(command, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,

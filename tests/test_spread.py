@@ -11,7 +11,6 @@ import json
 import math
 import os
 import signal
-import socket
 import subprocess
 import sys
 import time
@@ -26,6 +25,7 @@ from torch.utils.data import TensorDataset
 
 from sgdstab import LockstepError, StabilityTracker
 
+from ._launch import free_port, launch_ranks
 from ._spread_worker import run
 
 WORKER = Path(__file__).with_name("_spread_worker.py")
@@ -40,49 +40,10 @@ BASE = {"n": 90, "held_out": 30, "batch": 8, "epochs": 3, "lr": 0.2,
         "tracker_seed": 6}
 
 
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def _launch(config: dict, tmp_path: Path, world: int = 2, timeout: float = 150.0,
             expect_ok: bool = True) -> list[dict | None]:
-    """Run ``world`` ranks to completion (or kill them); each rank's result, None if it wrote
-    none (a rank that died)."""
-    tmp_path.mkdir(parents=True, exist_ok=True)
-    config_path = tmp_path / "config.json"
-    config_path.write_text(json.dumps({"timeout": 60, **config}), encoding="utf-8")
-    port = _free_port()
-    procs, logs = [], []
-    try:
-        for rank in range(world):
-            env = {**os.environ, "MASTER_ADDR": "127.0.0.1", "MASTER_PORT": str(port),
-                   "RANK": str(rank), "WORLD_SIZE": str(world), "GLOO_SOCKET_IFNAME": "lo",
-                   "OMP_NUM_THREADS": "1", "PYTHONFAULTHANDLER": "1"}
-            log = open(tmp_path / f"rank{rank}.log", "wb")   # noqa: SIM115 - closed below
-            logs.append(log)
-            procs.append(subprocess.Popen(
-                [sys.executable, str(WORKER), str(config_path), str(tmp_path / f"out{rank}.json")],
-                env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True))
-        deadline = time.monotonic() + timeout
-        for proc in procs:
-            proc.wait(timeout=max(1.0, deadline - time.monotonic()))
-    finally:
-        for proc in procs:
-            if proc.poll() is None:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait()
-        for log in logs:
-            log.close()
-    results: list[dict | None] = []
-    for rank, proc in enumerate(procs):
-        output = (tmp_path / f"rank{rank}.log").read_text(errors="replace")
-        if expect_ok:
-            assert proc.returncode == 0, f"rank {rank} failed:\n{output[-4000:]}"
-        out = tmp_path / f"out{rank}.json"
-        results.append(json.loads(out.read_text(encoding="utf-8")) if out.exists() else None)
-    return results
+    """Run ``world`` spread-tracker ranks; each rank's result, None if it wrote none."""
+    return launch_ranks(WORKER, config, tmp_path, world, timeout, expect_ok)
 
 
 def _assert_close(mine, theirs, path="reading", rel=1e-6):
@@ -273,7 +234,7 @@ def test_data_parallel_and_spread_shadows_do_not_combine(one_rank_group):
 def test_torchrun_example_runs_on_two_cpu_processes(tmp_path):
     example = Path(__file__).parents[1] / "examples" / "spread_shadows.py"
     command = [sys.executable, "-m", "torch.distributed.run", "--nnodes=1", "--nproc-per-node=2",
-               "--master-addr=127.0.0.1", f"--master-port={_free_port()}", str(example),
+               "--master-addr=127.0.0.1", f"--master-port={free_port()}", str(example),
                "--epochs", "2", "--shadows", "4", "--log-dir", str(tmp_path / "fog")]
     env = {**os.environ, "OMP_NUM_THREADS": "1", "GLOO_SOCKET_IFNAME": "lo"}
     proc = subprocess.Popen(command, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
