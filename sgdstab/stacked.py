@@ -352,25 +352,10 @@ class _HandStepper(_StackStepper):
             values.append(value.reshape(()))
         return torch.stack(values)
 
-    def update(self, stack: _Stack, gradients: dict[str, torch.Tensor], finite: torch.Tensor
-               ) -> dict[int, Any]:
-        """As ``_StackStepper.update``, with the optimizer's foreach kernels over the stack
-        where the user left the choice to torch."""
-        held = {} if bool(finite.all()) else \
-            {j: stack.slice(j) for j in range(len(stack.members)) if not finite[j]}
-        for name, stacked in stack.parameters.items():
-            stacked.grad = gradients[name]
-        for main_group, group in zip(self.main_optimizer.param_groups,
-                                     stack.optimizer.param_groups):
-            for key, value in main_group.items():
-                if key != "params":
-                    group[key] = value
-            _fastest_kernel(group)
-        stack.optimizer.step()
-        for stacked in stack.parameters.values():
-            stacked.grad = None
-        self.updates += 1
-        return held
+    def _tune(self, group: dict[str, Any]) -> None:
+        """The optimizer's foreach kernels over the stack where the user left the choice to
+        torch."""
+        _fastest_kernel(group)
 
 
 def _fastest_kernel(group: dict[str, Any]) -> None:

@@ -180,8 +180,13 @@ class _StackStepper:
             for key, value in main_group.items():
                 if key != "params":
                     group[key] = value
+            self._tune(group)
         stack.optimizer.step()
         for stacked in stack.parameters.values():
             stacked.grad = None
         self.updates += 1
         return held
+
+    def _tune(self, group: dict[str, Any]) -> None:
+        """Adjust a stacked optimizer group's kernel choice after the settings are copied (the
+        vmap engine keeps torch's own)."""
