@@ -369,16 +369,39 @@ class BatchedEngine:
         return self._constants
 
     def _restack(self, members: list[BatchedShadow]) -> None:
-        """Stack ``members`` afresh (after forks, faults or removals); no per-run copies are made
-        on the way, so the peak is the old stack plus the new one."""
+        """Stack ``members`` afresh (after forks, faults or removals). No per-run copies are
+        made on the way, and each of the old stack's tensors is let go as soon as its successor
+        is built, so the peak is the old stack plus one parameter's new tensors, not two whole
+        stacks."""
         old = self._stack
         states = [old.slice(old.slot[id(m)], copy=False) if old is not None and id(m) in old.slot
                   else m.state if m.state is not None else self._state_of(m) for m in members]
+        borrowed = [s for m, s in zip(members, states) if old is not None and id(m) in old.slot]
+
+        pending: dict[str, dict[str, Any]] = {}   # old state entries whose tensor is let go
+
+        def release(name: str, key: str | None) -> None:
+            if old is None:
+                return
+            if key is None:
+                for state in borrowed:   # views into the old stack, made above for this only
+                    state.parameters.pop(name, None)
+                tensor = old.parameters.pop(name)
+                pending[name] = old.optimizer.state.pop(tensor, {})
+                for group in old.optimizer.param_groups:
+                    group["params"] = [p for p in group["params"] if p is not tensor]
+                return
+            for state in borrowed:
+                state.optimizer.get(name, {}).pop(key, None)
+            pending[name].pop(key, None)
+
+        if old is not None:
+            old.views = None   # modules over the old slots alias its tensors
         stack = _stack_states(members, states, self._stepped, self._shapes, self._group_names,
-                              self.main_optimizer)
+                              self.main_optimizer, release)
         for member in members:
             member.state = None
-        del states, old
+        del states
         self._stack = stack
 
     def _views(self) -> list[nn.Module]:

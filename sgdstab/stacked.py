@@ -88,6 +88,17 @@ class _Activation:
             return F.elu(z, m.alpha)
         return z
 
+    def forward_in_place(self, z: torch.Tensor) -> torch.Tensor:
+        """``forward``, overwriting ``z`` where the derivative reads the output alone (the same
+        values: torch's in-place and out-of-place element-wise kernels agree bit for bit)."""
+        if self.kind == "relu":
+            return z.relu_()
+        if self.kind == "tanh":
+            return z.tanh_()
+        if self.kind == "sigmoid":
+            return z.sigmoid_()
+        return self.forward(z)
+
     def backward(self, grad: torch.Tensor, z: torch.Tensor, a: torch.Tensor) -> torch.Tensor:
         """The derivative through the activation, by torch's own backward kernels (the ones
         autograd uses), from its input ``z`` and output ``a``."""
@@ -286,23 +297,31 @@ class _HandStepper(_StackStepper):
         else:
             x = x.unsqueeze(0).expand(slots, rows, fan_in)
         with torch.no_grad():
-            saved: list[tuple[torch.Tensor, Any]] = []   # (input, output or noise) per layer
+            # (input, output or noise) per layer; a Linear layer's output is not kept (its
+            # backward reads its input only), so an activation whose derivative reads its output
+            # alone (relu, tanh, sigmoid) overwrites that fresh output in place: one tensor per
+            # hidden layer is held for the backward instead of two
+            saved: list[tuple[torch.Tensor, Any] | None] = []
             a = x
+            fresh = False   # whether ``a`` is a Linear output nothing else reads
             for layer in self.layers:
                 if isinstance(layer, _Linear):
                     out = torch.bmm(a, parameters[layer.weight].transpose(1, 2))
                     if layer.bias is not None:
                         out += parameters[layer.bias].unsqueeze(1)
-                elif isinstance(layer, _Dropout):
+                    saved.append((a, None))
+                    a, fresh = out, True
+                    continue
+                if isinstance(layer, _Dropout):
                     noise = layer.noise(a)
                     out = a if noise is None else a * noise
-                    saved.append((a, noise))   # type: ignore[arg-type]
-                    a = out
+                    saved.append((a, noise))
+                    a, fresh = out, False
                     continue
-                else:
-                    out = layer.forward(a)
+                out = layer.forward_in_place(a) if fresh else layer.forward(a)
                 saved.append((a, out))
-                a = out
+                a, fresh = out, False
+        del x
         with torch.enable_grad():
             outputs = a.detach().requires_grad_(True)
             losses = self._losses(outputs, targets, hits, rows)
@@ -311,7 +330,10 @@ class _HandStepper(_StackStepper):
         gradients: dict[str, torch.Tensor] = {}
         with torch.no_grad():
             for number in range(len(self.layers) - 1, -1, -1):
-                layer, (a_in, a_out) = self.layers[number], saved[number]
+                entry, saved[number] = saved[number], None   # freed once this layer is done
+                assert entry is not None
+                layer, (a_in, a_out) = self.layers[number], entry
+                del entry
                 if isinstance(layer, _Linear):
                     gradients[layer.weight] = torch.bmm(grad.transpose(1, 2), a_in)
                     if layer.bias is not None:
@@ -323,6 +345,7 @@ class _HandStepper(_StackStepper):
                         grad = grad * a_out
                 else:
                     grad = layer.backward(grad, a_in, a_out)
+                del a_in, a_out
         return gradients, losses
 
     def _losses(self, outputs: torch.Tensor, targets: torch.Tensor,

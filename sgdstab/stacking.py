@@ -125,31 +125,49 @@ def _layout(model: nn.Module, optimizer: torch.optim.Optimizer
 
 def _stack_states(members: list[BatchedShadow], states: Sequence[SlotState],
                   stepped: Sequence[str], shapes: Mapping[str, torch.Size],
-                  group_names: Sequence[Sequence[str]], main_optimizer: torch.optim.Optimizer
-                  ) -> _Stack:
+                  group_names: Sequence[Sequence[str]], main_optimizer: torch.optim.Optimizer,
+                  release: Callable[[str, str | None], None] | None = None) -> _Stack:
     """A stack of ``states`` (one per member, in order): the ``stepped`` parameters stacked,
     under a new optimizer of the main one's class and groups with their state stacked alike
-    (per-element entries stacked, shared ones checked equal and kept once)."""
-    parameters = {name: torch.stack([s.parameters[name] for s in states]) for name in stepped}
+    (per-element entries stacked, shared ones checked equal and kept once). ``release(name,
+    key)`` is called once ``name``'s parameter (key None) or its state entry ``key`` is stacked
+    (everything is checked before the first call), so the caller can free what the states held
+    of it before the next tensor is stacked."""
+    kinds = {}
+    for name in stepped:
+        keys = [tuple(s.optimizer.get(name, {})) for s in states]
+        if len(set(keys)) > 1:
+            raise LockstepError(f"optimizer state of {name} differs in kind between runs")
+        kinds[name] = keys[0]
+        for key in keys[0]:
+            values = [s.optimizer[name][key] for s in states]
+            if not _per_element(key, values[0], shapes[name]) and \
+                    not all(_same(values[0], v) for v in values[1:]):
+                raise LockstepError(f"optimizer state {key!r} of {name} differs between "
+                                    "runs that should share it")
+    parameters = {}
+    entries: dict[str, dict[str, Any]] = {}
+    for name in stepped:
+        parameters[name] = torch.stack([s.parameters[name] for s in states])
+        if release is not None:
+            release(name, None)
+        entry = {}
+        for key in kinds[name]:
+            values = [s.optimizer[name][key] for s in states]
+            if _per_element(key, values[0], shapes[name]):
+                entry[key] = torch.stack(values)
+            else:
+                entry[key] = _clone(values[0])
+            del values
+            if release is not None:
+                release(name, key)
+        entries[name] = entry
     groups = []
     for main_group, names in zip(main_optimizer.param_groups, group_names):
         settings = {key: value for key, value in main_group.items() if key != "params"}
         groups.append({**settings, "params": [parameters[n] for n in names if n in parameters]})
     optimizer = type(main_optimizer)(groups)  # type: ignore[call-arg]  # groups carry defaults
-    for name in stepped:
-        keys = [tuple(s.optimizer.get(name, {})) for s in states]
-        if len(set(keys)) > 1:
-            raise LockstepError(f"optimizer state of {name} differs in kind between runs")
-        entry = {}
-        for key in keys[0]:
-            values = [s.optimizer[name][key] for s in states]
-            if _per_element(key, values[0], shapes[name]):
-                entry[key] = torch.stack(values)
-            else:
-                if not all(_same(values[0], v) for v in values[1:]):
-                    raise LockstepError(f"optimizer state {key!r} of {name} differs between "
-                                        "runs that should share it")
-                entry[key] = _clone(values[0])
+    for name, entry in entries.items():
         if entry:
             optimizer.state[parameters[name]] = entry
     return _Stack(list(members), parameters, optimizer)
