@@ -56,3 +56,22 @@ def launch_ranks(worker: Path, config: dict, tmp_path: Path, world: int = 2,
         out = tmp_path / f"out{rank}.json"
         results.append(json.loads(out.read_text(encoding="utf-8")) if out.exists() else None)
     return results
+
+
+def run_torchrun(example: Path, args: list[str], timeout: float = 150.0) -> str:
+    """Run ``example`` under torchrun with 2 CPU processes on 127.0.0.1; its output (it must
+    exit 0)."""
+    command = [sys.executable, "-m", "torch.distributed.run", "--nnodes=1", "--nproc-per-node=2",
+               "--master-addr=127.0.0.1", f"--master-port={free_port()}", str(example), *args]
+    env = {**os.environ, "OMP_NUM_THREADS": "1", "GLOO_SOCKET_IFNAME": "lo"}
+    proc = subprocess.Popen(command, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
+                            start_new_session=True)
+    try:
+        output, _ = proc.communicate(timeout=timeout)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+    text = output.decode(errors="replace")
+    assert proc.returncode == 0, text[-4000:]
+    return text

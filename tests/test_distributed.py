@@ -11,9 +11,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import signal
-import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -24,7 +21,7 @@ import torch.distributed as dist
 from torch import nn
 
 from ._distributed_worker import buoy_readings, run_reference
-from ._launch import free_port, launch_ranks
+from ._launch import launch_ranks, run_torchrun
 
 WORKER = Path(__file__).with_name("_distributed_worker.py")
 
@@ -229,20 +226,8 @@ def test_refuses_a_model_that_is_not_data_parallel():
 
 def test_torchrun_example_runs_on_two_cpu_processes(tmp_path):
     example = Path(__file__).parents[1] / "examples" / "data_parallel.py"
-    command = [sys.executable, "-m", "torch.distributed.run", "--nnodes=1", "--nproc-per-node=2",
-               "--master-addr=127.0.0.1", f"--master-port={free_port()}", str(example),
-               "--epochs", "2", "--shadows", "2", "--log-dir", str(tmp_path / "turbines")]
-    env = {**os.environ, "OMP_NUM_THREADS": "1", "GLOO_SOCKET_IFNAME": "lo"}
-    proc = subprocess.Popen(command, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
-                            start_new_session=True)
-    try:
-        output, _ = proc.communicate(timeout=120)
-    finally:
-        if proc.poll() is None:
-            os.killpg(proc.pid, signal.SIGKILL)
-            proc.wait()
-    text = output.decode(errors="replace")
-    assert proc.returncode == 0, text[-4000:]
+    text = run_torchrun(example, ["--epochs", "2", "--shadows", "2",
+                                  "--log-dir", str(tmp_path / "turbines")], timeout=120)
     lines = [line for line in text.splitlines() if line.startswith("epoch ")]
     assert len(lines) == 2                                   # printed by rank 0 only
     assert "null-swap audit 0.0" in lines[0]

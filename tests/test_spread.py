@@ -9,10 +9,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import signal
-import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -25,7 +21,7 @@ from torch.utils.data import TensorDataset
 
 from sgdstab import LockstepError, StabilityTracker
 
-from ._launch import free_port, launch_ranks
+from ._launch import launch_ranks, run_torchrun
 from ._spread_worker import run
 
 WORKER = Path(__file__).with_name("_spread_worker.py")
@@ -233,20 +229,8 @@ def test_data_parallel_and_spread_shadows_do_not_combine(one_rank_group):
 
 def test_torchrun_example_runs_on_two_cpu_processes(tmp_path):
     example = Path(__file__).parents[1] / "examples" / "spread_shadows.py"
-    command = [sys.executable, "-m", "torch.distributed.run", "--nnodes=1", "--nproc-per-node=2",
-               "--master-addr=127.0.0.1", f"--master-port={free_port()}", str(example),
-               "--epochs", "2", "--shadows", "4", "--log-dir", str(tmp_path / "fog")]
-    env = {**os.environ, "OMP_NUM_THREADS": "1", "GLOO_SOCKET_IFNAME": "lo"}
-    proc = subprocess.Popen(command, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
-                            start_new_session=True)
-    try:
-        output, _ = proc.communicate(timeout=150)
-    finally:
-        if proc.poll() is None:
-            os.killpg(proc.pid, signal.SIGKILL)
-            proc.wait()
-    text = output.decode(errors="replace")
-    assert proc.returncode == 0, text[-4000:]
+    text = run_torchrun(example, ["--epochs", "2", "--shadows", "4",
+                                  "--log-dir", str(tmp_path / "fog")], timeout=150)
     lines = [line for line in text.splitlines() if line.startswith("epoch ")]
     assert len(lines) == 2                                   # printed by rank 0 only
     assert "(this rank steps [0, 2])" in lines[0] and "null-swap audit 0.0" in lines[0]
