@@ -6,7 +6,7 @@ import numpy as np
 import torch
 
 from sgdstab import Constants
-from sgdstab.assessment import (
+from sgdstab.tracking.assessment import (
     GroupSettings,
     assumption_breaches,
     effective_constants,

@@ -367,7 +367,7 @@ def _certified_gap(reading: EpochReading, epochs: int) -> float | None:
             or stability is None or n is None or delta is None or bound is None \
             or (reading.constants or {}).get("source") != "declared":
         return None
-    from .bounds import high_probability_gap
+    from ..theory.bounds import high_probability_gap
 
     return finite_or_none(high_probability_gap(stability, int(n), bound, delta / epochs).value)
 

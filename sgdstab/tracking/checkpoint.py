@@ -14,10 +14,10 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import torch
 
+from ..outputs.reading import EpochReading
+from ..shadows.lockstep import LockstepError, NeighbourSpec
+from ..theory.history import StepHistory
 from .assessment import GroupSettings
-from .history import StepHistory
-from .lockstep import LockstepError, NeighbourSpec
-from .reading import EpochReading
 
 if TYPE_CHECKING:  # pragma: no cover
     from .tracker import StabilityTracker

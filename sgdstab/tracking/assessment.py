@@ -13,8 +13,8 @@ from typing import Any
 import numpy as np
 import torch
 
+from ..theory.history import StepHistory
 from .constants import Constants
-from .history import StepHistory
 
 __all__ = ["GroupSettings", "groups_reason", "optimizer_reason", "effective_constants",
            "run_bounds", "loss_bound_reason", "assumption_breaches", "reading_fields"]
@@ -161,7 +161,7 @@ def run_bounds(history: StepHistory, n: int, constants: Constants, delta: float,
     A declared M below an observed per-example loss makes the bounds that use M (the
     high-probability gap; the non-convex t0 bound) not applicable, with that reason.
     """
-    from .divergence import assess_run
+    from ..theory.divergence import assess_run
 
     result = assess_run(
         regime=constants.regime, step_sizes=history.step_sizes(),

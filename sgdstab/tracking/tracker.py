@@ -17,12 +17,10 @@ from torch.utils._pytree import tree_flatten
 from torch.utils.data import DataLoader, Dataset
 from torch.utils.data._utils.collate import default_collate
 
-from . import measure
-from .assessment import GroupSettings, optimizer_reason
-from .constants import Constants
-from .engines import make_engine
-from .history import StepHistory, TimeSpent
-from .loaders import (
+from ..outputs.reading import EpochReading
+from ..outputs.sinks import RunSinks
+from ..shadows.engines import make_engine
+from ..shadows.loaders import (
     SizedBatches,
     check_batch_device,
     check_drawn,
@@ -30,7 +28,7 @@ from .loaders import (
     drawable_indices,
     recording_loader,
 )
-from .lockstep import (
+from ..shadows.lockstep import (
     HostRngGuard,
     LockstepError,
     NeighbourSpec,
@@ -41,11 +39,13 @@ from .lockstep import (
     select_rows,
     trainable_parameters,
 )
+from ..shadows.neighbours import attach_rows, explicit_neighbours, seeded_neighbours
+from ..theory.history import StepHistory, TimeSpent
+from . import measure
+from .assessment import GroupSettings, optimizer_reason
+from .constants import Constants
 from .measure import default_probe_size
-from .neighbours import attach_rows, explicit_neighbours, seeded_neighbours
 from .probe import PerExampleLoss, ProbeRows, model_losses
-from .reading import EpochReading
-from .sinks import RunSinks
 
 __all__ = ["StabilityTracker", "LockstepWarning", "AssumptionWarning", "ShadowFaultWarning"]
 
@@ -661,7 +661,7 @@ class StabilityTracker:
         ``TrainingPlan`` built from the run); otherwise it extrapolates the recorded bound.
         ``options`` go to ``sgdstab.advice.advise``.
         """
-        from .advice import TrainingPlan, advise
+        from ..outputs.advice import TrainingPlan, advise
 
         if "plan" not in options and self.history.steps:
             step_sizes, batch_sizes = self.history.step_sizes(), self.history.batch_sizes()

@@ -17,6 +17,9 @@ import numpy as np
 import torch
 from torch import nn
 
+from ..outputs.reading import EpochReading
+from ..shadows.lockstep import Shadow, preserved_rng, squared_distance, trainable_parameters
+from ..theory.history import StepHistory
 from .assessment import (
     GroupSettings,
     assumption_breaches,
@@ -27,14 +30,11 @@ from .assessment import (
     run_bounds,
 )
 from .constants import Constants
-from .history import StepHistory
-from .lockstep import Shadow, preserved_rng, squared_distance, trainable_parameters
 from .probe import PerExampleLoss, ProbeRows, ProbeSummary, model_losses, summarise_probe
-from .reading import EpochReading
 
 if TYPE_CHECKING:
-    from .batched import BatchedEngine
-    from .lockstep import PerShadowEngine
+    from ..shadows.batched import BatchedEngine
+    from ..shadows.lockstep import PerShadowEngine
 
 __all__ = ["divergences", "divergence", "masked_faults", "default_probe_size", "build_probe",
            "fresh_replacements", "build_holdout", "held_out_summary", "largest_loss",

@@ -210,7 +210,7 @@ def acceleration_in(readings: Sequence[EpochReading], table: np.ndarray, consecu
 
 def _planner() -> Any:
     try:
-        from . import bounds
+        from ..theory import bounds
     except ImportError:
         return None
     return getattr(bounds, "max_steps", None)
