@@ -17,7 +17,7 @@ _WHERE = {
     "ShadowFaultWarning": "tracking.tracker",
     "DataParallelStabilityTracker": "tracking.distributed",
     "EngineFallbackWarning": "shadows.engines",
-    "Constants": "tracking.constants",
+    "Constants": "theory.constants",
     "estimate_lipschitz": "tracking.constants",
     "estimate_smoothness": "tracking.constants",
     "LockstepError": "shadows.lockstep",

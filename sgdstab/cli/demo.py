@@ -70,7 +70,7 @@ class GlazeGrader(nn.Module):
 
 def demo_constants(*datasets: TensorDataset) -> Any:
     """Closed-form constants of softmax cross-entropy on these rows (see the module docstring)."""
-    from ..tracking.constants import Constants
+    from ..theory.constants import Constants
 
     norm = max(float(d.tensors[0].norm(dim=1).max()) for d in datasets)
     return Constants(lipschitz=math.sqrt(2.0) * norm, smoothness=norm ** 2 / 2, convex=True)

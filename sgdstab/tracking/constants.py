@@ -1,4 +1,6 @@
-"""Lipschitz and smoothness constants of a model's per-example loss, declared or estimated.
+"""Estimating the Lipschitz and smoothness constants of a model's per-example loss.
+
+The ``Constants`` record itself lives in ``sgdstab.theory.constants`` (re-exported here).
 
 The stability bounds of Hardt, Recht & Singer 2016 ("Train faster, generalize better") need the
 per-example loss ``f(w; z)`` to be ``L``-Lipschitz and ``beta``-smooth in the parameters ``w``.
@@ -13,220 +15,74 @@ They are labelled ``source="estimated"`` and never presented as certified consta
 
 from __future__ import annotations
 
-import math
 import warnings
 from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
-from dataclasses import asdict, dataclass, fields
 from typing import Any
 
 import torch
 from torch import nn
 from torch.func import functional_call, grad, vmap
 
+from ..theory.constants import LIPSCHITZ_FLOOR, SMOOTHNESS_FLOOR, Constants
+
 __all__ = [
     "Constants",
     "LIPSCHITZ_FLOOR",
     "SMOOTHNESS_FLOOR",
+    "estimate_constants",
     "estimate_lipschitz",
     "estimate_smoothness",
     "per_example_gradient_norms",
 ]
 
-#: Smallest value ``estimate_smoothness`` returns, so that a flat loss (zero curvature on the
-#: probe batch) still yields a valid ``Constants`` (smoothness must be > 0).
-SMOOTHNESS_FLOOR = 1e-12
-#: Same floor for the Lipschitz estimate inside ``Constants.estimate`` (all gradients zero).
-LIPSCHITZ_FLOOR = 1e-12
-
-_SOURCES = ("declared", "estimated")
 _CURVATURES = ("magnitude", "top")
 
 LossFn = Callable[[Any, Any], torch.Tensor]
 StepLoss = Callable[[nn.Module, Any], torch.Tensor]
 
 
-# ---------------------------------------------------------------------------------------------
-# Constants
-# ---------------------------------------------------------------------------------------------
+def estimate_constants(
+    cls: type[Constants],
+    model: nn.Module,
+    batch: Any,
+    *,
+    loss_fn: LossFn | None = None,
+    step_loss: StepLoss | None = None,
+    convex: bool = False,
+    strong_convexity: float = 0.0,
+    loss_bound: float | None = None,
+    **kwargs: Any,
+) -> Constants:
+    """``Constants.estimate``: L and beta on ``batch`` (LOWER, local estimates; see above).
 
-
-def _finite_float(name: str, value: Any) -> float:
-    if isinstance(value, bool):
-        raise ValueError(f"{name} must be a real number, got {value!r}")
-    try:
-        number = float(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name} must be a real number, got {value!r}") from None
-    if not math.isfinite(number):
-        raise ValueError(f"{name} must be finite, got {value!r}")
-    return number
-
-
-@dataclass(frozen=True)
-class Constants:
-    """Constants of the per-example loss ``f(w; z)`` used by the SGD stability bounds.
-
-    ``lipschitz`` L (``||grad f|| <= L``), ``smoothness`` beta (gradient beta-Lipschitz),
-    ``strong_convexity`` gamma (only with ``convex=True``), ``loss_bound`` M (``f`` in ``[0, M]``),
-    ``source`` "declared" (stated by the user) or "estimated" (measured by ``estimate``).
-    Notation of Hardt, Recht & Singer 2016, Sec. 2.
+    ``kwargs``: ``chunk_size`` (per-example gradients) and ``iterations``, ``tolerance``,
+    ``per_example``, ``seed``, ``curvature`` (see ``estimate_smoothness``). Convexity, strong
+    convexity and the loss bound cannot be measured here and are taken as declared. Since
+    beta >= gamma for any gamma-strongly convex beta-smooth loss, the smoothness is raised to
+    the declared gamma if the estimate falls below it; L is floored at ``LIPSCHITZ_FLOOR``.
     """
+    allowed = {"chunk_size", "iterations", "tolerance", "per_example", "seed", "curvature"}
+    unknown = set(kwargs) - allowed
+    if unknown:
+        raise TypeError(f"Constants.estimate got unexpected arguments: {sorted(unknown)}")
+    chunk_size = kwargs.pop("chunk_size", 128)
+    norms = per_example_gradient_norms(
+        model, batch, loss_fn=loss_fn, step_loss=step_loss, chunk_size=chunk_size
+    )
+    lipschitz = float(norms.max())
+    smoothness = _smoothness(
+        model, batch, loss_fn=loss_fn, step_loss=step_loss, norms=norms, **kwargs
+    )
+    return cls(
+        lipschitz=max(lipschitz, LIPSCHITZ_FLOOR),
+        smoothness=max(smoothness, float(strong_convexity)),
+        strong_convexity=strong_convexity,
+        loss_bound=loss_bound,
+        convex=convex,
+        source="estimated",
+    )
 
-    lipschitz: float
-    smoothness: float
-    strong_convexity: float = 0.0
-    loss_bound: float | None = None
-    convex: bool = False
-    source: str = "declared"
-
-    def __post_init__(self) -> None:
-        lipschitz = _finite_float("lipschitz", self.lipschitz)
-        if lipschitz <= 0:
-            raise ValueError(f"lipschitz must be > 0, got {self.lipschitz!r}")
-        smoothness = _finite_float("smoothness", self.smoothness)
-        if smoothness <= 0:
-            raise ValueError(f"smoothness must be > 0, got {self.smoothness!r}")
-        if not isinstance(self.convex, bool):
-            raise ValueError(f"convex must be a bool, got {self.convex!r}")
-        strong_convexity = _finite_float("strong_convexity", self.strong_convexity)
-        if strong_convexity < 0:
-            raise ValueError(f"strong_convexity must be >= 0, got {self.strong_convexity!r}")
-        if strong_convexity > 0 and not self.convex:
-            raise ValueError(
-                f"strong_convexity={self.strong_convexity!r} > 0 requires convex=True"
-            )
-        if strong_convexity > smoothness:
-            raise ValueError(
-                f"strong_convexity={self.strong_convexity!r} exceeds "
-                f"smoothness={self.smoothness!r}"
-            )
-        loss_bound = None
-        if self.loss_bound is not None:
-            loss_bound = _finite_float("loss_bound", self.loss_bound)
-            if loss_bound <= 0:
-                raise ValueError(f"loss_bound must be None or > 0, got {self.loss_bound!r}")
-        if self.source not in _SOURCES:
-            raise ValueError(f"source must be one of {_SOURCES}, got {self.source!r}")
-        object.__setattr__(self, "lipschitz", lipschitz)
-        object.__setattr__(self, "smoothness", smoothness)
-        object.__setattr__(self, "strong_convexity", strong_convexity)
-        object.__setattr__(self, "loss_bound", loss_bound)
-
-    @property
-    def regime(self) -> str:
-        """"strongly_convex" (convex, gamma > 0), "convex" or "nonconvex"."""
-        if not self.convex:
-            return "nonconvex"
-        return "strongly_convex" if self.strong_convexity > 0 else "convex"
-
-    def with_weight_decay(self, weight_decay: float, *, radius: float | None = None) -> Constants:
-        """Constants of ``f + lambda/2 ||w||^2`` (SGD's ``weight_decay=lambda``; HRS 2016 Sec. 2).
-
-        Smoothness grows by lambda; strong convexity grows by lambda when the loss is convex.
-        The gradient gains ``lambda * w``: with ``radius`` R (a bound on ``||w||`` over the
-        iterates) the Lipschitz constant grows by ``lambda * R``; without it L is left as is.
-        """
-        decay = _finite_float("weight_decay", weight_decay)
-        if decay < 0:
-            raise ValueError(f"weight_decay must be >= 0, got {weight_decay!r}")
-        lipschitz = self.lipschitz
-        if radius is not None:
-            bound = _finite_float("radius", radius)
-            if bound < 0:
-                raise ValueError(f"radius must be >= 0, got {radius!r}")
-            lipschitz += decay * bound
-        return Constants(
-            lipschitz=lipschitz,
-            smoothness=self.smoothness + decay,
-            strong_convexity=self.strong_convexity + decay if self.convex else 0.0,
-            loss_bound=self.loss_bound,
-            convex=self.convex,
-            source=self.source,
-        )
-
-    def merged_max(self, other: Constants) -> Constants:
-        """Running maxima of L and beta over two readings (re-estimation along the trajectory).
-
-        Both must agree on ``convex``. The smaller strong convexity and the larger loss bound
-        are kept (the weaker assumption); the result is "estimated" if either input is.
-        """
-        if not isinstance(other, Constants):
-            raise TypeError(f"merged_max expects Constants, got {type(other).__name__}")
-        if other.convex != self.convex:
-            raise ValueError(
-                f"cannot merge constants with convex={self.convex} and convex={other.convex}"
-            )
-        if self.loss_bound is None:
-            loss_bound = other.loss_bound
-        elif other.loss_bound is None:
-            loss_bound = self.loss_bound
-        else:
-            loss_bound = max(self.loss_bound, other.loss_bound)
-        estimated = "estimated" in (self.source, other.source)
-        return Constants(
-            lipschitz=max(self.lipschitz, other.lipschitz),
-            smoothness=max(self.smoothness, other.smoothness),
-            strong_convexity=min(self.strong_convexity, other.strong_convexity),
-            loss_bound=loss_bound,
-            convex=self.convex,
-            source="estimated" if estimated else "declared",
-        )
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain dict of the fields (JSON-serialisable); ``from_dict`` inverts it."""
-        return asdict(self)
-
-    @classmethod
-    def from_dict(cls, data: Mapping[str, Any]) -> Constants:
-        """Rebuild from ``to_dict`` output; unknown keys are a ValueError."""
-        known = {f.name for f in fields(cls)}
-        unknown = set(data) - known
-        if unknown:
-            raise ValueError(f"unknown Constants fields: {sorted(unknown)}")
-        return cls(**dict(data))
-
-    @classmethod
-    def estimate(
-        cls,
-        model: nn.Module,
-        batch: Any,
-        *,
-        loss_fn: LossFn | None = None,
-        step_loss: StepLoss | None = None,
-        convex: bool = False,
-        strong_convexity: float = 0.0,
-        loss_bound: float | None = None,
-        **kwargs: Any,
-    ) -> Constants:
-        """Estimate L and beta on ``batch`` (LOWER, local estimates; see the module docstring).
-
-        ``kwargs``: ``chunk_size`` (per-example gradients) and ``iterations``, ``tolerance``,
-        ``per_example``, ``seed``, ``curvature`` (see ``estimate_smoothness``). Convexity, strong
-        convexity and the loss bound cannot be measured here and are taken as declared. Since
-        beta >= gamma for any gamma-strongly convex beta-smooth loss, the smoothness is raised to
-        the declared gamma if the estimate falls below it; L is floored at ``LIPSCHITZ_FLOOR``.
-        """
-        allowed = {"chunk_size", "iterations", "tolerance", "per_example", "seed", "curvature"}
-        unknown = set(kwargs) - allowed
-        if unknown:
-            raise TypeError(f"Constants.estimate got unexpected arguments: {sorted(unknown)}")
-        chunk_size = kwargs.pop("chunk_size", 128)
-        norms = per_example_gradient_norms(
-            model, batch, loss_fn=loss_fn, step_loss=step_loss, chunk_size=chunk_size
-        )
-        lipschitz = float(norms.max())
-        smoothness = _smoothness(
-            model, batch, loss_fn=loss_fn, step_loss=step_loss, norms=norms, **kwargs
-        )
-        return cls(
-            lipschitz=max(lipschitz, LIPSCHITZ_FLOOR),
-            smoothness=max(smoothness, float(strong_convexity)),
-            strong_convexity=strong_convexity,
-            loss_bound=loss_bound,
-            convex=convex,
-            source="estimated",
-        )
 
 
 # ---------------------------------------------------------------------------------------------

@@ -19,8 +19,7 @@ from torch import nn
 
 from ..outputs.reading import EpochReading
 from ..shadows.lockstep import Shadow, preserved_rng, squared_distance, trainable_parameters
-from ..theory.history import StepHistory
-from .assessment import (
+from ..theory.assessment import (
     GroupSettings,
     assumption_breaches,
     effective_constants,
@@ -29,7 +28,8 @@ from .assessment import (
     reading_fields,
     run_bounds,
 )
-from .constants import Constants
+from ..theory.constants import Constants
+from ..theory.history import StepHistory
 from .probe import PerExampleLoss, ProbeRows, ProbeSummary, model_losses, summarise_probe
 
 if TYPE_CHECKING:

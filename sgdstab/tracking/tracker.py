@@ -40,11 +40,12 @@ from ..shadows.lockstep import (
     trainable_parameters,
 )
 from ..shadows.neighbours import attach_rows, explicit_neighbours, seeded_neighbours
+from ..theory.assessment import GroupSettings
+from ..theory.constants import Constants
 from ..theory.history import StepHistory, TimeSpent
 from . import measure
-from .assessment import GroupSettings, optimizer_reason
-from .constants import Constants
 from .measure import default_probe_size
+from .optimizer_rule import optimizer_reason
 from .probe import PerExampleLoss, ProbeRows, model_losses
 
 __all__ = ["StabilityTracker", "LockstepWarning", "AssumptionWarning", "ShadowFaultWarning"]
