@@ -18,6 +18,8 @@ _WHERE = {
     "DataParallelStabilityTracker": "tracking.distributed",
     "EngineFallbackWarning": "shadows.engines",
     "Constants": "theory.constants",
+    "ConstantSettings": "tracking.settings",
+    "ProbeSettings": "tracking.settings",
     "estimate_lipschitz": "tracking.constants",
     "estimate_smoothness": "tracking.constants",
     "LockstepError": "shadows.lockstep",

@@ -47,6 +47,7 @@ from . import measure
 from .measure import default_probe_size
 from .optimizer_rule import optimizer_reason
 from .probe import PerExampleLoss, ProbeRows, model_losses
+from .settings import NOT_GIVEN, ConstantSettings, ProbeSettings, resolve_settings
 
 __all__ = ["StabilityTracker", "LockstepWarning", "AssumptionWarning", "ShadowFaultWarning"]
 
@@ -68,6 +69,9 @@ class StabilityTracker:
 
     Use ``for batch in tracker.batches(loader)`` in place of ``for batch in loader`` and call
     ``tracker.finish_epoch()`` after each epoch; the shadows step inside ``optimizer.step()``.
+    ``constant_settings=ConstantSettings(...)`` and ``probe_settings=ProbeSettings(...)`` group
+    the flat keywords ``constants``, ``estimate_every``, ``estimate_options``, ``loss_bound`` and
+    ``probe_set``, ``probe_size`` (either form; one option given both ways is a TypeError).
     """
 
     def __new__(cls, *args: Any, shadow_group: Any = None, **kwargs: Any) -> StabilityTracker:
@@ -88,21 +92,23 @@ class StabilityTracker:
         shadows: int = 4,
         swap: Sequence[tuple[int, Any]] | None = None,
         replacements: Dataset | None = None,
-        probe_set: Dataset | None = None,
+        probe_set: Dataset | None = NOT_GIVEN,
         log_dir: str | Path | None = None,
         seed: int = 0,
         audit: bool = True,
-        constants: Constants | str | None = None,
+        constants: Constants | str | None = NOT_GIVEN,
         delta: float = 0.05,
         before_step: Callable[[nn.Module], Any] | None = None,
         lazy_fork: bool = True,
-        probe_size: int | None = None,
+        probe_size: int | None = NOT_GIVEN,
         engine: str = "auto",
-        loss_bound: float | None = None,
-        estimate_every: int = 1,
-        estimate_options: dict[str, Any] | None = None,
+        loss_bound: float | None = NOT_GIVEN,
+        estimate_every: int = NOT_GIVEN,
+        estimate_options: dict[str, Any] | None = NOT_GIVEN,
         preserve_host_rng: bool | None = None,
         shadow_group: Any = None,
+        constant_settings: ConstantSettings | None = None,
+        probe_settings: ProbeSettings | None = None,
     ) -> None:
         if shadow_group is not None:   # StabilityTracker(...) itself builds a spread tracker
             raise LockstepError(
@@ -110,6 +116,14 @@ class StabilityTracker:
                 "shadow parallelism replicates the main run on every rank, which data-parallel "
                 "tracking does not; use StabilityTracker(model, optimizer, shadow_group=group, "
                 "...) on every rank with a replicated loop instead")
+        chosen = resolve_settings(
+            {"constant_settings": constant_settings, "probe_settings": probe_settings},
+            {"constants": constants, "estimate_every": estimate_every,
+             "estimate_options": estimate_options, "loss_bound": loss_bound,
+             "probe_set": probe_set, "probe_size": probe_size})
+        constants, estimate_every = chosen["constants"], chosen["estimate_every"]
+        estimate_options, loss_bound = chosen["estimate_options"], chosen["loss_bound"]
+        probe_set, probe_size = chosen["probe_set"], chosen["probe_size"]
         if not isinstance(model, nn.Module):
             raise TypeError("model must be a torch.nn.Module")
         if isinstance(model, DistributedDataParallel):
