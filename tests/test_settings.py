@@ -21,7 +21,7 @@ def _run(**options):
     if "grouped_probe_size" in options:   # the probe set and size as one ProbeSettings
         options["probe_settings"] = ProbeSettings(probe, options.pop("grouped_probe_size"))
     elif "probe_settings" not in options:
-        options["probe_set"] = probe
+        options.setdefault("probe_set", probe)
     tracker = StabilityTracker(model, optimizer, loss_fn=F.cross_entropy, train_set=data,
                                shadows=2, audit=False, **options)
     readings = train(model, optimizer, loader(data), epochs=3, tracker=tracker)
@@ -42,8 +42,9 @@ def test_grouped_and_flat_options_give_the_same_readings():
 
 
 def test_the_defaults_of_the_settings_are_the_flat_defaults():
-    plain, plain_readings = _run()
-    grouped, grouped_readings = _run(constant_settings=ConstantSettings(), probe_settings=None)
+    plain, plain_readings = _run(probe_set=None)
+    grouped, grouped_readings = _run(constant_settings=ConstantSettings(),
+                                     probe_settings=ProbeSettings())
     assert [r.to_json() for r in grouped_readings] == [r.to_json() for r in plain_readings]
     assert grouped.estimate_every == 1 and not grouped.estimate_constants
 
