@@ -6,8 +6,9 @@ step t (counted from 1) has step size alpha_t and batch size b_t, n training exa
 L-Lipschitz, beta-smooth, optionally gamma-strongly convex, with values in [0, M].
 
 This module is also the base of the two built on it, whose names stay importable from here:
-sgdstab.divergence (expansivity, the divergence recursions, the non-convex t0 bound of a schedule,
-a recorded run's bounds) and sgdstab.planner (step-size schedules, planned bounds, inversions).
+sgdstab.theory.divergence (expansivity, the divergence recursions, the non-convex t0 bound of a
+schedule, a recorded run's bounds) and sgdstab.theory.planner (schedules, planned bounds,
+inversions).
 
 Provenance (what was checked with the search tool, and what is from memory):
 - Hardt, Recht & Singer 2016, "Train faster, generalize better: stability of stochastic gradient
@@ -450,7 +451,7 @@ _ELSEWHERE = {
 
 def __getattr__(name: str) -> Any:
     # Resolved on first use (PEP 562): both modules import from this one, so importing them here
-    # at load time would make `import sgdstab.planner` fail when it is the first import.
+    # at load time would make `import sgdstab.theory.planner` fail when it is the first import.
     if name not in _ELSEWHERE:
         raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
     value = getattr(importlib.import_module(f".{_ELSEWHERE[name]}", __package__), name)

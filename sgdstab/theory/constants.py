@@ -158,29 +158,14 @@ class Constants:
         return cls(**dict(data))
 
     @classmethod
-    def estimate(
-        cls,
-        model: Any,
-        batch: Any,
-        *,
-        loss_fn: Any = None,
-        step_loss: Any = None,
-        convex: bool = False,
-        strong_convexity: float = 0.0,
-        loss_bound: float | None = None,
-        **kwargs: Any,
-    ) -> Constants:
-        """Estimate L and beta on ``batch`` (LOWER, local estimates; see the module docstring).
+    def estimate(cls, model: Any, batch: Any, **options: Any) -> Constants:
+        """Estimate L and beta of ``model``'s per-example loss on ``batch`` (LOWER, local).
 
-        ``kwargs``: ``chunk_size`` (per-example gradients) and ``iterations``, ``tolerance``,
-        ``per_example``, ``seed``, ``curvature`` (see ``estimate_smoothness``). Convexity, strong
-        convexity and the loss bound cannot be measured here and are taken as declared. Since
-        beta >= gamma for any gamma-strongly convex beta-smooth loss, the smoothness is raised to
-        the declared gamma if the estimate falls below it; L is floored at ``LIPSCHITZ_FLOOR``.
+        Runs ``sgdstab.tracking.constants.estimate_constants`` (torch), whose keywords it takes:
+        ``loss_fn`` or ``step_loss``, the declared ``convex``, ``strong_convexity`` and
+        ``loss_bound``, and the estimators' ``chunk_size``, ``iterations``, ``tolerance``,
+        ``per_example``, ``seed``, ``curvature``.
         """
         from ..tracking.constants import estimate_constants  # torch, loaded only when estimating
 
-        return estimate_constants(
-            cls, model, batch, loss_fn=loss_fn, step_loss=step_loss, convex=convex,
-            strong_convexity=strong_convexity, loss_bound=loss_bound, **kwargs,
-        )
+        return estimate_constants(cls, model, batch, **options)

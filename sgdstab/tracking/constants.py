@@ -56,6 +56,8 @@ def estimate_constants(
 ) -> Constants:
     """``Constants.estimate``: L and beta on ``batch`` (LOWER, local estimates; see above).
 
+    ``cls``: the record to build (``Constants``).
+
     ``kwargs``: ``chunk_size`` (per-example gradients) and ``iterations``, ``tolerance``,
     ``per_example``, ``seed``, ``curvature`` (see ``estimate_smoothness``). Convexity, strong
     convexity and the loss bound cannot be measured here and are taken as declared. Since
