@@ -47,7 +47,6 @@ OVER_THE_LIMIT: dict[str, str] = {
     "theory/planner.py": "schedules, planned bounds, inverse solvers",
     "tracking/constants.py": "the torch estimators of L and beta",
     "outputs/advice.py": "the stop criteria and the advice",
-    "outputs/report.py": "plots and report.html",
 }
 
 

@@ -20,8 +20,9 @@ from torch.utils.data import DataLoader, TensorDataset
 from sgdstab import Constants, EpochReading, StabilityTracker, read_history
 from sgdstab.cli import report as cli_report
 from sgdstab.outputs.advice import CAUTIONS, advise
+from sgdstab.outputs.charts import BAND_FROM, _Canvas
 from sgdstab.outputs.labels import CRITERION_LABELS, criterion_label
-from sgdstab.outputs.report import BAND_FROM, _Canvas, write_report
+from sgdstab.outputs.report import write_report
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
 CHARTS = ("divergence.png", "stability.png", "gap.png", "losses.png")
