@@ -46,7 +46,6 @@ OVER_THE_LIMIT: dict[str, str] = {
     "theory/divergence.py": "the divergence recursions",
     "theory/planner.py": "schedules, planned bounds, inverse solvers",
     "tracking/constants.py": "the torch estimators of L and beta",
-    "outputs/advice.py": "the stop criteria and the advice",
 }
 
 
