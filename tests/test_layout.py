@@ -45,7 +45,6 @@ OVER_THE_LIMIT: dict[str, str] = {
     "theory/bounds.py": "the closed forms and their high-probability conversion",
     "theory/divergence.py": "the divergence recursions",
     "theory/planner.py": "schedules, planned bounds, inverse solvers",
-    "tracking/constants.py": "the torch estimators of L and beta",
 }
 
 
