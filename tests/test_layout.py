@@ -37,7 +37,6 @@ OVER_THE_LIMIT: dict[str, str] = {
     # Being changed on other branches at the time of the move; split once those have landed, so
     # that their changes merge into the moved files.
     "shadows/batched.py": "parallel work on the batched engine",
-    "shadows/lockstep.py": "parallel work on PerShadowEngine",
     "shadows/stacked.py": "parallel work on the stacked engine",
     "tracking/measure.py": "parallel work on the epoch-end measurement",
     "tracking/tracker.py": "parallel work on the step hooks",

@@ -1,4 +1,4 @@
-"""The shadow engine: neighbour specs, row substitution in a batch, RNG replay, lazy fork.
+"""The shadow engine: neighbour specs, row substitution in a batch, RNG replay (``rng``), lazy fork.
 
 A *shadow* is a copy of the user's model trained on a neighbouring dataset: the training set with
 one example swapped. It sees the very batches the main run saw, in the same order, with the swapped
@@ -8,17 +8,18 @@ so dropout masks and in-loop augmentation match the main run.
 
 from __future__ import annotations
 
-import contextlib
 import copy
 import math
-import random
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import torch
 from torch import nn
+
+from .parameters import parameters_finite, squared_distance, trainable_parameters
+from .rng import HostRngGuard, preserved_rng
 
 __all__ = [
     "NeighbourSpec",
@@ -32,6 +33,8 @@ __all__ = [
     "PerShadowEngine",
     "StepGroup",
     "squared_distance",
+    "parameters_finite",
+    "trainable_parameters",
 ]
 
 
@@ -55,57 +58,6 @@ class NeighbourSpec:
 
     def describe(self) -> dict[str, Any]:
         return {"index": self.index, "origin": self.origin, "source_index": self.source_index}
-
-
-@contextlib.contextmanager
-def preserved_rng() -> Iterator[None]:
-    """Run a block without disturbing torch's CPU RNG, Python's ``random`` or NumPy's global RNG."""
-    torch_state = torch.get_rng_state()
-    python_state = random.getstate()
-    numpy_state = np.random.get_state()
-    try:
-        yield
-    finally:
-        torch.set_rng_state(torch_state)
-        random.setstate(python_state)
-        np.random.set_state(numpy_state)
-
-
-class HostRngGuard:
-    """Keeps Python's ``random`` and NumPy's global RNG as they were across the shadows' steps.
-
-    Only torch's RNG is replayed for the shadows. Saving the host states costs ~70 us a step, so
-    with ``mode=None`` they are guarded during the first epoch and, after it, at every
-    ``sample_every``-th step only (~2 us a step), where the guard also checks whether the
-    shadows' steps draw from them (``used``); once a draw is seen, guarding stays on at every
-    step. ``mode=True`` always guards, ``mode=False`` never does.
-    """
-
-    def __init__(self, mode: bool | None = None, sample_every: int = 32) -> None:
-        self.mode = mode
-        self.used = False
-        self.sample_every = sample_every
-
-    def save(self, first_epoch: bool, step: int = 0) -> tuple[Any, Any] | None:
-        if self.mode is False:
-            return None
-        if self.mode is None and not self.used and not first_epoch and \
-                step % self.sample_every:
-            return None
-        return random.getstate(), np.random.get_state()
-
-    def restore(self, states: tuple[Any, Any]) -> bool:
-        """Put the states back; True when this is the first time a draw was detected."""
-        python_state, numpy_state = states
-        detected = False
-        if self.mode is None and not self.used:
-            now: Any = np.random.get_state()   # the legacy tuple (name, keys, pos, ...)
-            if random.getstate() != python_state or now[2:] != numpy_state[2:] or \
-                    not np.array_equal(now[1], numpy_state[1]):
-                self.used = detected = True
-        random.setstate(python_state)
-        np.random.set_state(numpy_state)
-        return detected
 
 
 def batch_length(batch: Any) -> int | None:
@@ -271,37 +223,6 @@ class Shadow:
     @property
     def active(self) -> bool:
         return self.forked and self.fault is None
-
-
-def parameters_finite(params: Sequence[torch.Tensor]) -> bool:
-    """Whether every parameter is finite, in one fused norm call (a norm that overflows, i.e.
-    entries beyond ~1e19 in float32, counts as non-finite: such a run has diverged anyway)."""
-    with torch.no_grad():
-        try:
-            norms = torch._foreach_norm(list(params))
-        except (AttributeError, RuntimeError):   # pragma: no cover - older or exotic builds
-            return all(bool(torch.isfinite(p).all()) for p in params)
-        return bool(torch.isfinite(torch.stack(norms)).all())
-
-
-def squared_distance(a: torch.Tensor, b: torch.Tensor | None = None, chunk: int = 1 << 16
-                     ) -> float:
-    """``sum((a - b)**2)`` (or ``sum(a**2)``) in float64, converted a chunk at a time so that no
-    float64 copy of a whole large tensor is made (epoch-end peak memory)."""
-    with torch.no_grad():
-        flat_a = a.detach().reshape(-1)
-        flat_b = None if b is None else b.detach().reshape(-1)
-        total = 0.0
-        for start in range(0, flat_a.numel(), chunk):
-            part = flat_a[start:start + chunk].double()
-            if flat_b is not None:
-                part = part - flat_b[start:start + chunk].double()
-            total += float(torch.dot(part, part))
-        return total
-
-
-def trainable_parameters(model: nn.Module) -> list[tuple[str, nn.Parameter]]:
-    return [(name, p) for name, p in model.named_parameters() if p.requires_grad]
 
 
 class PerShadowEngine:
