@@ -34,11 +34,12 @@ __all__ = [
     "squared_distance",
     "GROUPED_OPTIMIZERS",
     "GROUPED_STEP_BYTES",
+    "grouped_step_refusal",
 ]
 
 # Optimizers (exact classes) whose foreach step over many runs' parameters at once was checked to
 # give every parameter the very bits that stepping each run with its own optimizer gives, with
-# either kernel path (tests/test_lockstep.py steps both side by side over several steps). On CPU
+# either kernel path (tests/test_grouped_step.py steps both side by side over several steps). On CPU
 # torch's foreach ops loop over the tensors with the same per-tensor kernels.
 # NAdam, RAdam and ASGD are left out: their foreach steps differed in the last bits (2.6e-7,
 # 7.5e-9 and 1.5e-7 after six steps of a small CNN, torch 2.13 CPU).
@@ -517,7 +518,8 @@ class PerShadowEngine:
 
     def _step_together(self, ready: Sequence[Shadow], settings: list[dict[str, Any]]) -> None:
         """One foreach optimizer step over the gradients ``ready``'s backward passes left."""
-        if len(ready) == 1 or any(_optimizer_hooks(s.optimizer) for s in ready):
+        if len(ready) == 1 or any(_optimizer_hooks(s.optimizer) for s in ready) or \
+                not all(_plain_setting(values.get("lr")) for values in settings):
             for shadow in ready:
                 shadow.optimizer.step()
         else:
