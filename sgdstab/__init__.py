@@ -22,7 +22,7 @@ _WHERE = {
     "ProbeSettings": "tracking.settings",
     "estimate_lipschitz": "tracking.constants",
     "estimate_smoothness": "tracking.constants",
-    "LockstepError": "shadows.lockstep",
+    "LockstepError": "shadows.errors",
     "NeighbourSpec": "shadows.lockstep",
     "EpochReading": "outputs.reading",
     "read_history": "outputs.reading",

@@ -38,7 +38,6 @@ OVER_THE_LIMIT: dict[str, str] = {
     # landed, so that their changes merge into the moved files.
     "shadows/batched.py": "parallel work on the batched engine",
     "shadows/stacked.py": "parallel work on the stacked engine",
-    "shadows/lockstep.py": "grew by the grouped optimizer step merged from main",
     "tracking/measure.py": "parallel work on the epoch-end measurement",
     "tracking/tracker.py": "parallel work on the step hooks; one class (StabilityTracker)",
     # tests/test_bounds.py pins these three modules' structure (where each name is defined, what
