@@ -124,3 +124,16 @@ def test_no_module_is_longer_than_the_limit(path):
         assert lines > MAX_LINES, f"{name} is short enough now: take it off OVER_THE_LIMIT"
         return
     assert lines <= MAX_LINES, f"{name} has {lines} lines (limit {MAX_LINES}): split it"
+
+
+def test_the_console_script_names_the_command_line_entry():
+    import importlib
+
+    from .test_packaging import PYPROJECT as pyproject
+
+    target = pyproject["project"]["scripts"]["sgdstab"]
+    module, _, name = target.partition(":")
+    entry = getattr(importlib.import_module(module), name)
+    assert callable(entry) and entry is importlib.import_module("sgdstab.cli.main").main
+    assert entry is importlib.import_module("sgdstab.__main__").main   # python -m sgdstab
+    assert "sgdstab*" in pyproject["tool"]["setuptools"]["packages"]["find"]["include"]
