@@ -6,7 +6,7 @@
 ``holdout_loss``, the epoch with the lowest loss on the held-out examples no shadow swapped in;
 without a held-out set, ``estimated_risk``, training loss + the replace-one estimate of the
 *expected* gap; without either, ``divergence_acceleration`` (a heuristic: the divergence starts to
-grow faster than linearly; see ``sgdstab.trends``).
+grow faster than linearly; see ``sgdstab.outputs.trends``).
 
 **The guarantee is reported beside it, never choosing by default**: up to which epoch a stability
 bound stays within a target (default: a tenth of the trivial loss). The bound used is

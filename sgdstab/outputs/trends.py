@@ -1,6 +1,7 @@
 """How a run's readings evolve: readings in, divergence acceleration, the bound's budget.
 
-Pure functions of ``EpochReading`` objects (or history.jsonl dicts) used by ``sgdstab.advice``:
+Pure functions of ``EpochReading`` objects (or history.jsonl dicts) used by
+``sgdstab.outputs.advice``:
 
 - ``acceleration_epoch``: the epoch after which the measured divergence grows faster than
   linearly. Let ``D_e`` be the mean divergence over the shadows at epoch ``e`` (``D_0 = 0``) and

@@ -136,7 +136,7 @@ def loss_bound_reason(constants: Constants, loss_seen: float | None) -> str:
 
 def run_bounds(history: StepHistory, n: int, constants: Constants, delta: float,
                reason: str, loss_seen: float | None = None) -> Any:
-    """Every bound for the recorded run (``sgdstab.divergence.RunBounds``).
+    """Every bound for the recorded run (``sgdstab.theory.divergence.RunBounds``).
 
     A declared M below an observed per-example loss makes the bounds that use M (the
     high-probability gap; the non-convex t0 bound) not applicable, with that reason.

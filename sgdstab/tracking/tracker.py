@@ -670,11 +670,11 @@ class StabilityTracker:
         return self._estimated
 
     def advise(self, target: float | None = None, **options: Any) -> Any:
-        """Stop suggestions from the readings so far (``sgdstab.advice.StopAdvice``).
+        """Stop suggestions from the readings so far (``sgdstab.outputs.advice.StopAdvice``).
 
         With a constant step size and batch size the budget projection uses the planner (a
         ``TrainingPlan`` built from the run); otherwise it extrapolates the recorded bound.
-        ``options`` go to ``sgdstab.advice.advise``.
+        ``options`` go to ``sgdstab.outputs.advice.advise``.
         """
         from ..outputs.advice import TrainingPlan, advise
 
