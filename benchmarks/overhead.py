@@ -33,7 +33,7 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import StabilityTracker
-from sgdstab.stacked import stacked_refusal
+from sgdstab.shadows.stacked import stacked_refusal
 
 # Targets (ratios); see benchmarks/README.md for what each one covers.
 TARGET_K1 = 2.1          # K=1 per-shadow tracked epoch / plain epoch (floor: 2.0)

@@ -26,8 +26,8 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import Constants, StabilityTracker
-from sgdstab.advice import advise
-from sgdstab.report import write_report
+from sgdstab.outputs.advice import advise
+from sgdstab.outputs.report import write_report
 
 SENSORS = ("weight change", "brood temperature", "humidity", "hum loudness", "daylight")
 

@@ -26,7 +26,7 @@ from torch.nn.parallel import DistributedDataParallel
 from torch.utils.data import DataLoader, Subset, TensorDataset
 from torch.utils.data.distributed import DistributedSampler
 
-from sgdstab.distributed import DataParallelStabilityTracker
+from sgdstab.tracking.distributed import DataParallelStabilityTracker
 
 READINGS = 8
 

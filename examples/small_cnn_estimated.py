@@ -26,7 +26,7 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import StabilityTracker
-from sgdstab.report import write_report
+from sgdstab.outputs.report import write_report
 
 SIDE = 12
 

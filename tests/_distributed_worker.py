@@ -160,7 +160,7 @@ def run_rank(config: dict) -> dict:
     """Train one rank of the data-parallel run (the process group is initialised)."""
     from torch.nn.parallel import DistributedDataParallel
 
-    from sgdstab.distributed import DataParallelStabilityTracker
+    from sgdstab.tracking.distributed import DataParallelStabilityTracker
 
     rank, world = dist.get_rank(), dist.get_world_size()
     dtype = getattr(torch, config["dtype"])

@@ -8,7 +8,7 @@ import os
 
 import pytest
 
-from sgdstab.stacked import AUTO_OVERRIDE_VARIABLE
+from sgdstab.shadows.stacked import AUTO_OVERRIDE_VARIABLE
 
 
 @pytest.fixture(autouse=True)

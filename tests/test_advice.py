@@ -8,7 +8,7 @@ import math
 import numpy as np
 import pytest
 
-from sgdstab.advice import (
+from sgdstab.outputs.advice import (
     CAUTIONS,
     LABELS,
     StopAdvice,
@@ -16,7 +16,7 @@ from sgdstab.advice import (
     acceleration_epoch,
     advise,
 )
-from sgdstab.reading import EpochReading
+from sgdstab.outputs.reading import EpochReading
 
 DECLARED = {"lipschitz": 1.0, "smoothness": 0.25, "strong_convexity": 0.0, "loss_bound": None,
             "convex": True, "source": "declared"}

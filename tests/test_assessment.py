@@ -6,14 +6,14 @@ import numpy as np
 import torch
 
 from sgdstab import Constants
-from sgdstab.assessment import (
+from sgdstab.theory.assessment import (
     GroupSettings,
     assumption_breaches,
     effective_constants,
     groups_reason,
     loss_bound_reason,
-    optimizer_reason,
 )
+from sgdstab.tracking.optimizer_rule import optimizer_reason
 
 
 def _params():

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from sgdstab import bounds, divergence, planner
+from sgdstab.theory import bounds, divergence, planner
 
 BOUNDS_FILE = Path(bounds.__file__)
 # The modules that must load without torch: sgdstab.bounds and the two built on it.
@@ -114,10 +114,10 @@ def test_every_public_name_stays_importable_from_bounds(module):
 
 @pytest.mark.parametrize("first", ["planner", "divergence", "bounds"])
 def test_any_of_the_modules_can_be_imported_first(first):
-    code = f"import sgdstab.{first}, sgdstab.bounds as b; print(b.Schedule.__module__)"
+    code = f"import sgdstab.theory.{first}, sgdstab.bounds as b; print(b.Schedule.__module__)"
     result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert result.returncode == 0, result.stderr
-    assert result.stdout.strip() == "sgdstab.planner"
+    assert result.stdout.strip() == "sgdstab.theory.planner"
 
 
 # --- recursions reproduce the closed forms -------------------------------------------------------

@@ -11,8 +11,8 @@ import sys
 import pytest
 
 import sgdstab
-from sgdstab.cli import build_parser, main
-from sgdstab.demo import COLUMNS, _progress
+from sgdstab.cli.demo import COLUMNS, _progress
+from sgdstab.cli.main import build_parser, main
 
 
 def test_version_flag_prints_the_package_version(capsys):

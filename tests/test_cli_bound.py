@@ -9,8 +9,8 @@ import json
 import numpy as np
 import pytest
 
-from sgdstab import bounds
-from sgdstab.cli_bound import configure, run
+from sgdstab.cli.bound import configure, run
+from sgdstab.theory import bounds
 
 
 def _run(argv, capsys):

@@ -1,4 +1,5 @@
-"""Behaviour of sgdstab.constants: validation, arithmetic, per-example gradients, model state.
+"""Behaviour of sgdstab.tracking.constants: validation, arithmetic, per-example gradients and
+model state.
 
 Checks against closed forms and reference libraries live in tests/test_reference_constants.py.
 The reference for per-example gradients here is a plain autograd loop, one backward pass per
@@ -16,7 +17,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 from torch import nn
 
-from sgdstab.constants import (
+from sgdstab.tracking.constants import (
     SMOOTHNESS_FLOOR,
     Constants,
     estimate_lipschitz,

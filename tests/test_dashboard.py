@@ -32,8 +32,8 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import Constants, StabilityTracker
-from sgdstab.reading import EpochReading
-from sgdstab.sinks import (
+from sgdstab.outputs.reading import EpochReading
+from sgdstab.outputs.sinks import (
     BOUNDS_RUN,
     advice_markdown,
     bound_tags,
@@ -171,7 +171,7 @@ def test_non_finite_and_vacuous_bounds_are_not_written():
 
 
 def test_prefix_and_epoch_axis_are_configurable(tmp_path):
-    from sgdstab.sinks import TensorBoardSink
+    from sgdstab.outputs.sinks import TensorBoardSink
 
     sink = TensorBoardSink(tmp_path, prefix="stab", step_axis="epoch")
     sink.write_layout(2)

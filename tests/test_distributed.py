@@ -216,7 +216,7 @@ def test_ranks_with_different_seeds_are_refused(tmp_path):
 
 
 def test_refuses_a_model_that_is_not_data_parallel():
-    from sgdstab.distributed import DataParallelStabilityTracker
+    from sgdstab.tracking.distributed import DataParallelStabilityTracker
 
     model = nn.Linear(3, 2)
     with pytest.raises(TypeError, match="DistributedDataParallel"):

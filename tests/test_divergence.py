@@ -1,5 +1,5 @@
-"""Tests of sgdstab.divergence: expansivity, the divergence recursions (expected, pathwise, every
-index at once), the non-convex t0 bound of a schedule, and assess_run.
+"""Tests of sgdstab.theory.divergence: expansivity, the divergence recursions (expected, pathwise,
+every index at once), the non-convex t0 bound of a schedule, and assess_run.
 
 "HRS 2016" is Hardt, Recht & Singer 2016, "Train faster, generalize better" (statements from
 memory); "SCIENCE.md" is /work/shared/SCIENCE.md. Checks of the recursions against the closed forms
@@ -9,7 +9,7 @@ of sgdstab.bounds live in tests/test_bounds.py.
 import numpy as np
 import pytest
 
-from sgdstab import bounds, divergence
+from sgdstab.theory import bounds, divergence
 
 
 def _random_run(seed, steps=40, n=9, max_batch=5, with_replacement=True):

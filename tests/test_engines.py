@@ -23,15 +23,15 @@ from torch import nn
 from torch.func import vmap
 
 from sgdstab import LockstepWarning, ShadowFaultWarning, StabilityTracker
-from sgdstab.batched import BatchedEngine
-from sgdstab.engines import (
+from sgdstab.shadows.batched import BatchedEngine
+from sgdstab.shadows.engines import (
     ENGINES,
     EngineFallbackWarning,
     batched_refusal,
     make_engine,
     replayed_dropout_kinds,
 )
-from sgdstab.lockstep import LockstepError, PerShadowEngine
+from sgdstab.shadows.lockstep import LockstepError, PerShadowEngine
 
 from ._toy import flat, loader, mlp, pebbles, train
 

@@ -9,7 +9,7 @@ import torch
 import torch.nn.functional as F
 
 from sgdstab import Constants, StabilityTracker
-from sgdstab.measure import ESTIMATE_ANYWAY
+from sgdstab.tracking.measure import ESTIMATE_ANYWAY
 
 from ._toy import loader, mlp, pebbles, train
 

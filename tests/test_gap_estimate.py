@@ -16,7 +16,7 @@ import torch.nn.functional as F
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import StabilityTracker
-from sgdstab.demo import GlazeGrader, glaze_tiles
+from sgdstab.cli.demo import GlazeGrader, glaze_tiles
 
 
 def _loss(model, dataset):

@@ -11,7 +11,7 @@ import torch.nn.functional as F
 from torch import nn
 from torch.optim.optimizer import register_optimizer_step_post_hook
 
-from sgdstab.lockstep import (
+from sgdstab.shadows.lockstep import (
     GROUPED_OPTIMIZERS,
     NeighbourSpec,
     PerShadowEngine,

@@ -12,7 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from torch.utils.data._utils.collate import default_collate
 
-from sgdstab.lockstep import (
+from sgdstab.shadows.lockstep import (
     LockstepError,
     preserved_rng,
     select_rows,
@@ -138,7 +138,7 @@ def test_substitution_property_over_random_nested_batches(spec, rows, data):
 
 
 def test_host_rng_guard_detects_draws_and_restores_the_states():
-    from sgdstab.lockstep import HostRngGuard
+    from sgdstab.shadows.lockstep import HostRngGuard
 
     guard = HostRngGuard()
     states = guard.save(first_epoch=True)

@@ -14,10 +14,10 @@ from torch import nn
 from torch.utils.data import DataLoader, Dataset, SubsetRandomSampler, TensorDataset
 
 from sgdstab import Constants, LockstepWarning, ShadowFaultWarning, StabilityTracker
-from sgdstab.lockstep import LockstepError
-from sgdstab.probe import PerExampleLoss
-from sgdstab.reading import read_history
-from sgdstab.sinks import JsonlSink
+from sgdstab.outputs.reading import read_history
+from sgdstab.outputs.sinks import JsonlSink
+from sgdstab.shadows.lockstep import LockstepError
+from sgdstab.tracking.probe import PerExampleLoss
 
 from ._toy import flat, loader, mlp, pebbles, train
 
@@ -438,7 +438,7 @@ def test_the_index_record_is_compact_and_round_trips():
     state = tracker.state_dict()["history"]
     assert state["indices"].dtype == torch.int16 and state["indices_dtype"] == "uint16"
     big = np.array([70000, 3], dtype=np.int64)
-    from sgdstab.history import StepHistory
+    from sgdstab.theory.history import StepHistory
 
     history = StepHistory(shadows=0)
     history.record(0.1, 2, big, [])

@@ -12,9 +12,10 @@ import torch.nn.functional as F
 from torch.utils.data import Dataset, TensorDataset
 from torch.utils.data._utils.collate import default_collate
 
-from sgdstab import LockstepWarning, StabilityTracker, measure
-from sgdstab.history import StepHistory
-from sgdstab.lockstep import NeighbourSpec, Shadow
+from sgdstab import LockstepWarning, StabilityTracker
+from sgdstab.shadows.lockstep import NeighbourSpec, Shadow
+from sgdstab.theory.history import StepHistory
+from sgdstab.tracking import measure
 
 from ._toy import mlp, pebbles
 

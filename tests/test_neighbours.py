@@ -7,8 +7,8 @@ import pytest
 import torch
 from torch.utils.data._utils.collate import default_collate
 
-from sgdstab.lockstep import LockstepError, NeighbourSpec, Shadow
-from sgdstab.neighbours import attach_rows, explicit_neighbours, seeded_neighbours
+from sgdstab.shadows.lockstep import LockstepError, NeighbourSpec, Shadow
+from sgdstab.shadows.neighbours import attach_rows, explicit_neighbours, seeded_neighbours
 
 
 def _fetch(dataset, j):

@@ -11,7 +11,7 @@ import torch
 import torch.nn.functional as F
 
 from sgdstab import EpochReading, StabilityTracker, read_history
-from sgdstab.reading import FRAME_COLUMNS, readings_to_frame
+from sgdstab.outputs.reading import FRAME_COLUMNS, readings_to_frame
 
 from ._toy import loader, mlp, pebbles, train
 

@@ -6,7 +6,7 @@ import subprocess
 import sys
 
 import sgdstab
-from sgdstab.cli import build_parser, main
+from sgdstab.cli.main import build_parser, main
 
 
 def test_importing_the_bounds_through_the_package_loads_no_torch():

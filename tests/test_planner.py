@@ -1,4 +1,4 @@
-"""Tests of sgdstab.planner: planned bounds and their inversions (max_steps, max_step_size,
+"""Tests of sgdstab.theory.planner: planned bounds and their inversions (max_steps, max_step_size,
 min_train_size), checked against the bound they invert and against inversions by hand.
 
 "HRS 2016" is Hardt, Recht & Singer 2016, "Train faster, generalize better" (statements from
@@ -10,7 +10,7 @@ import json
 import numpy as np
 import pytest
 
-from sgdstab import divergence, planner
+from sgdstab.theory import divergence, planner
 
 PROBLEMS = {
     "convex constant": dict(regime="convex", n=1000, lipschitz=1.0, smoothness=4.0,

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from scipy import optimize
 
-from sgdstab import bounds
+from sgdstab.theory import bounds
 
 
 def test_convex_closed_form_hand_value():

@@ -1,4 +1,4 @@
-"""sgdstab.constants against sources outside the project.
+"""sgdstab.tracking.constants against sources outside the project.
 
 Sources: closed forms of the logistic and squared losses (derived in comments, common practice;
 SCIENCE §4 states L = max||x||, beta = max||x||^2/4 for logistic loss and Hessian X^T X / n for
@@ -16,7 +16,7 @@ from scipy.special import expit
 from torch import nn
 from torch.func import functional_call
 
-from sgdstab.constants import (
+from sgdstab.tracking.constants import (
     SMOOTHNESS_FLOOR,
     Constants,
     estimate_lipschitz,

@@ -2,8 +2,8 @@
 
 Sources: scikit-learn's bundled datasets (wine, breast cancer, iris; a test-only dependency), each
 split into training, held-out (the tracker's replacements) and a test split the tracker never sees;
-the demo's generating process (``sgdstab.demo.glaze_tiles``) for 40,000 fresh tiles. The model is
-convex softmax regression with constants in closed form (common practice, derived in
+the demo's generating process (``sgdstab.cli.demo.glaze_tiles``) for 40,000 fresh tiles. The model
+is convex softmax regression with constants in closed form (common practice, derived in
 ``_constants``). The suggested stop must have a true test loss within 5 % of the best epoch's.
 """
 
@@ -19,7 +19,7 @@ import torch.nn.functional as F
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import Constants, StabilityTracker
-from sgdstab.divergence import assess_run
+from sgdstab.theory.divergence import assess_run
 
 sklearn_datasets = pytest.importorskip("sklearn.datasets")
 
@@ -137,7 +137,7 @@ def test_the_stop_finds_the_turn_when_noisy_labels_make_the_model_overfit(monkey
 
 
 def test_the_demo_stop_is_within_five_percent_on_fresh_tiles(tmp_path):
-    from sgdstab.demo import GlazeGrader, glaze_tiles, run_demo
+    from sgdstab.cli.demo import GlazeGrader, glaze_tiles, run_demo
 
     result = run_demo(tmp_path / "demo", quiet=True, report=False)
     fresh = glaze_tiles(40_000, seed=987_654)            # fresh draws, never seen in the run

@@ -17,10 +17,12 @@ import torch.nn.functional as F
 from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
-from sgdstab import Constants, EpochReading, StabilityTracker, cli_report, read_history
-from sgdstab.advice import CAUTIONS, advise
-from sgdstab.labels import CRITERION_LABELS, criterion_label
-from sgdstab.report import BAND_FROM, _Canvas, write_report
+from sgdstab import Constants, EpochReading, StabilityTracker, read_history
+from sgdstab.cli import report as cli_report
+from sgdstab.outputs.advice import CAUTIONS, advise
+from sgdstab.outputs.charts import BAND_FROM, _Canvas
+from sgdstab.outputs.labels import CRITERION_LABELS, criterion_label
+from sgdstab.outputs.report import write_report
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), file signature
 CHARTS = ("divergence.png", "stability.png", "gap.png", "losses.png")
@@ -263,7 +265,7 @@ def test_command_writes_the_report_and_prints_its_path(run_dir: Path, tmp_path: 
 
 def test_the_package_command_line_runs_the_report(run_dir: Path, tmp_path: Path,
                                                   capsys: pytest.CaptureFixture[str]):
-    cli = pytest.importorskip("sgdstab.cli")
+    cli = pytest.importorskip("sgdstab.cli.main")
     assert cli.main(["report", str(run_dir), "--out", str(tmp_path)]) == 0
     assert Path(capsys.readouterr().out.strip()) == tmp_path / "report.html"
 
@@ -304,7 +306,7 @@ def test_the_verdict_block_comes_first_with_a_word_for_each_status(run_dir: Path
 
 
 def test_every_known_criterion_has_a_label_and_unknown_names_read_as_words():
-    from sgdstab.advice import LABELS
+    from sgdstab.outputs.advice import LABELS
 
     assert set(LABELS) <= set(CRITERION_LABELS)      # every criterion the advice names
     assert {"bound_risk", "bound_budget", "measured_risk"} <= set(CRITERION_LABELS)  # older files

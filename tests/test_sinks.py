@@ -60,7 +60,7 @@ def test_tensorboard_scalars_read_back_with_tensorboards_event_reader(run_dir):
 
 def test_history_and_advice_records_carry_the_schema_and_package_versions(run_dir, tmp_path):
     from sgdstab import __version__
-    from sgdstab.reading import SCHEMA_VERSION
+    from sgdstab.outputs.reading import SCHEMA_VERSION
 
     out, _ = run_dir
     records = read_history(out)

@@ -204,8 +204,8 @@ def test_shadow_group_needs_an_initialised_process_group():
 def test_data_parallel_and_spread_shadows_do_not_combine(one_rank_group):
     from torch.nn.parallel import DistributedDataParallel
 
-    from sgdstab.distributed import DataParallelStabilityTracker
-    from sgdstab.spread import SpreadStabilityTracker
+    from sgdstab.tracking.distributed import DataParallelStabilityTracker
+    from sgdstab.tracking.spread import SpreadStabilityTracker
 
     data, model, optimizer = _small()
     ddp = DistributedDataParallel(model)

@@ -21,9 +21,9 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import StabilityTracker
-from sgdstab.engines import EngineFallbackWarning, make_engine
-from sgdstab.lockstep import PerShadowEngine
-from sgdstab.stacked import AUTO_OVERRIDE_VARIABLE, StackedEngine, stacked_refusal
+from sgdstab.shadows.engines import EngineFallbackWarning, make_engine
+from sgdstab.shadows.lockstep import PerShadowEngine
+from sgdstab.shadows.stacked import AUTO_OVERRIDE_VARIABLE, StackedEngine, stacked_refusal
 
 STACKED_RELATIVE = 1e-5
 

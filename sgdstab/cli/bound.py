@@ -12,8 +12,8 @@ import math
 import sys
 from typing import Any
 
-from sgdstab import bounds
-from sgdstab.cli_types import number, whole_number
+from ..theory import bounds
+from .argtypes import number, whole_number
 
 _SOLVE_FOR = ("steps", "step-size", "train-size")
 _TARGET_BOUNDS = ("stability", "high-probability")
@@ -197,7 +197,7 @@ def _bound_json(bound: bounds.Bound, loss_bound: float | None) -> dict[str, Any]
 
 
 def _as_json(args: argparse.Namespace, plan: dict[str, Any]) -> dict[str, Any]:
-    from sgdstab import __version__
+    from .. import __version__
 
     keys = {"stability bound": "stability"}
     names = {name: keys.get(name, "high_probability_gap" if name.startswith("gap w.p.") else

@@ -17,7 +17,9 @@ import numpy as np
 import torch
 from torch import nn
 
-from .assessment import (
+from ..outputs.reading import EpochReading
+from ..shadows.lockstep import Shadow, preserved_rng, squared_distance, trainable_parameters
+from ..theory.assessment import (
     GroupSettings,
     assumption_breaches,
     effective_constants,
@@ -26,15 +28,13 @@ from .assessment import (
     reading_fields,
     run_bounds,
 )
-from .constants import Constants
-from .history import StepHistory
-from .lockstep import Shadow, preserved_rng, squared_distance, trainable_parameters
+from ..theory.constants import Constants
+from ..theory.history import StepHistory
 from .probe import PerExampleLoss, ProbeRows, ProbeSummary, model_losses, summarise_probe
-from .reading import EpochReading
 
 if TYPE_CHECKING:
-    from .batched import BatchedEngine
-    from .lockstep import PerShadowEngine
+    from ..shadows.batched import BatchedEngine
+    from ..shadows.lockstep import PerShadowEngine
 
 __all__ = ["divergences", "divergence", "masked_faults", "default_probe_size", "build_probe",
            "fresh_replacements", "build_holdout", "held_out_summary", "largest_loss",

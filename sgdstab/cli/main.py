@@ -11,8 +11,8 @@ __all__ = ["main", "build_parser"]
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from . import __version__
-    from .cli_types import whole_number
+    from .. import __version__
+    from .argtypes import whole_number
 
     parser = argparse.ArgumentParser(
         prog="sgdstab",
@@ -42,7 +42,7 @@ def build_parser() -> argparse.ArgumentParser:
         "bound", help="print a published SGD stability bound for a planned run",
         description="The stability bounds of a planned SGD run, epoch by epoch, and with "
                     "--target the planner's answer.")
-    from . import cli_bound
+    from . import bound as cli_bound
 
     cli_bound.configure(bound)
 
@@ -50,7 +50,7 @@ def build_parser() -> argparse.ArgumentParser:
         "report", help="write charts and report.html for a run directory",
         description="Write PNG charts and a self-contained report.html for a run directory "
                     "(needs matplotlib: pip install 'sgdstab[report]').")
-    from . import cli_report
+    from . import report as cli_report
 
     cli_report.configure(report)
     return parser
@@ -75,10 +75,10 @@ def _run(argv: Sequence[str] | None) -> int:
                  report=not args.no_report)
         return 0
     if args.command == "bound":
-        from . import cli_bound
+        from . import bound as cli_bound
 
         return int(cli_bound.run(args))
-    from . import cli_report
+    from . import report as cli_report
 
     return int(cli_report.run(args))
 

@@ -14,10 +14,10 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import torch
 
-from .assessment import GroupSettings
-from .history import StepHistory
-from .lockstep import LockstepError, NeighbourSpec
-from .reading import EpochReading
+from ..outputs.reading import EpochReading
+from ..shadows.lockstep import LockstepError, NeighbourSpec
+from ..theory.assessment import GroupSettings
+from ..theory.history import StepHistory
 
 if TYPE_CHECKING:  # pragma: no cover
     from .tracker import StabilityTracker
@@ -109,7 +109,7 @@ def restore_tracker(tracker: StabilityTracker, state: Mapping[str, Any]) -> None
         raise _mismatch("the model architecture (parameter names and shapes)",
                         f"{len(saved_names)} tensors starting {saved_names[:3]}",
                         f"{len(here)} tensors starting {[n for n, _ in here[:3]]}")
-    from .constants import Constants
+    from ..theory.constants import Constants
 
     engine = tracker.engine
     for shadow, spec, shadow_state in zip(tracker.shadows, state["specs"],

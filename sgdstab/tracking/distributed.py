@@ -28,9 +28,9 @@ from torch.nn.parallel import DistributedDataParallel
 from torch.utils.data import DataLoader, Dataset
 from torch.utils.data.distributed import DistributedSampler
 
-from .loaders import SizedBatches
-from .lockstep import LockstepError, NeighbourSpec, StepGroup, select_rows
-from .reading import EpochReading
+from ..outputs.reading import EpochReading
+from ..shadows.loaders import SizedBatches
+from ..shadows.lockstep import LockstepError, NeighbourSpec, StepGroup, select_rows
 from .tracker import LockstepWarning, StabilityTracker
 
 __all__ = ["DataParallelStabilityTracker", "ReplicaGradientAverager"]

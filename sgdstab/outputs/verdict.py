@@ -15,7 +15,7 @@ from .reading import EpochReading
 from .trends import finite_or_none
 
 if TYPE_CHECKING:
-    from .advice import AdviceRow, Criterion
+    from .criteria import AdviceRow, Criterion
 
 __all__ = ["VerdictLine", "verdict_lines", "STATUSES"]
 

@@ -1,9 +1,9 @@
 """Planned SGD runs: step-size schedules, the bound after T planned steps, and its inversions.
 
-planned_bounds evaluates the bounds of sgdstab.bounds and sgdstab.divergence on a schedule fixed in
-advance; max_steps, max_step_size and min_train_size invert them (closed form where one exists,
-integer bisection or scipy root finding otherwise). numpy, scipy and the standard library only; no
-torch. Sources and assumptions travel with each Bound and PlanAnswer.
+planned_bounds evaluates the bounds of sgdstab.theory.bounds and sgdstab.theory.divergence on a
+schedule fixed in advance; max_steps, max_step_size and min_train_size invert them (closed form
+where one exists, integer bisection or scipy root finding otherwise). numpy, scipy and the
+standard library only; no torch. Sources and assumptions travel with each Bound and PlanAnswer.
 """
 
 from __future__ import annotations

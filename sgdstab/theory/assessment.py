@@ -1,7 +1,8 @@
-"""What a recorded run implies: applicability to the optimizer, constants, bounds, audit.
+"""What a recorded run implies: the parameter groups' rule, constants, bounds, audit.
 
 Pure functions between the tracker's record (``StepHistory``) and the published bounds
-(``sgdstab.divergence.assess_run``); the tracker only calls them and warns.
+(``sgdstab.theory.divergence.assess_run``); the tracker only calls them and warns. Whether
+the optimizer is one the bounds cover is decided in ``sgdstab.tracking.optimizer_rule``.
 """
 
 from __future__ import annotations
@@ -11,37 +12,16 @@ from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
-import torch
 
 from .constants import Constants
 from .history import StepHistory
 
-__all__ = ["GroupSettings", "groups_reason", "optimizer_reason", "effective_constants",
+__all__ = ["GroupSettings", "groups_reason", "effective_constants",
            "run_bounds", "loss_bound_reason", "assumption_breaches", "reading_fields"]
 
 #: Relative and absolute (times 1 + ||w||) slack for float round-off in the assumption audit.
 AUDIT_RTOL = 1e-5
 AUDIT_ATOL = 1e-6
-
-
-def optimizer_reason(optimizer: torch.optim.Optimizer) -> str:
-    """Why the published bounds do not apply to this optimizer ('' when they do).
-
-    The bounds (Hardt, Recht & Singer 2016) are proved for plain SGD; momentum, Nesterov,
-    adaptive methods and maximisation are outside them.
-    """
-    if type(optimizer) is not torch.optim.SGD:
-        return (f"optimizer is {type(optimizer).__name__}: the bounds are proved for plain SGD "
-                "(the tracker still measures)")
-    for group in optimizer.param_groups:
-        if group.get("momentum", 0):
-            return (f"SGD with momentum {group['momentum']}: the bounds are proved for plain SGD "
-                    "(the tracker still measures)")
-        if group.get("nesterov", False):
-            return "SGD with Nesterov momentum: the bounds are proved for plain SGD"
-        if group.get("maximize", False):
-            return "SGD with maximize=True: the bounds are stated for minimisation"
-    return ""
 
 
 @dataclass
@@ -156,12 +136,12 @@ def loss_bound_reason(constants: Constants, loss_seen: float | None) -> str:
 
 def run_bounds(history: StepHistory, n: int, constants: Constants, delta: float,
                reason: str, loss_seen: float | None = None) -> Any:
-    """Every bound for the recorded run (``sgdstab.divergence.RunBounds``).
+    """Every bound for the recorded run (``sgdstab.theory.divergence.RunBounds``).
 
     A declared M below an observed per-example loss makes the bounds that use M (the
     high-probability gap; the non-convex t0 bound) not applicable, with that reason.
     """
-    from .divergence import assess_run
+    from ..theory.divergence import assess_run
 
     result = assess_run(
         regime=constants.regime, step_sizes=history.step_sizes(),

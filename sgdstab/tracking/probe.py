@@ -19,7 +19,7 @@ import torch
 from torch import nn
 from torch.utils._pytree import tree_flatten, tree_map
 
-from .lockstep import LockstepError, preserved_rng, select_rows
+from ..shadows.lockstep import LockstepError, preserved_rng, select_rows
 
 __all__ = ["ProbeRows", "ProbeSummary", "PerExampleLoss", "evaluation_mode", "summarise_probe"]
 

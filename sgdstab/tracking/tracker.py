@@ -17,12 +17,10 @@ from torch.utils._pytree import tree_flatten
 from torch.utils.data import DataLoader, Dataset
 from torch.utils.data._utils.collate import default_collate
 
-from . import measure
-from .assessment import GroupSettings, optimizer_reason
-from .constants import Constants
-from .engines import make_engine
-from .history import StepHistory, TimeSpent
-from .loaders import (
+from ..outputs.reading import EpochReading
+from ..outputs.sinks import RunSinks
+from ..shadows.engines import make_engine
+from ..shadows.loaders import (
     SizedBatches,
     check_batch_device,
     check_drawn,
@@ -30,7 +28,7 @@ from .loaders import (
     drawable_indices,
     recording_loader,
 )
-from .lockstep import (
+from ..shadows.lockstep import (
     HostRngGuard,
     LockstepError,
     NeighbourSpec,
@@ -41,11 +39,15 @@ from .lockstep import (
     select_rows,
     trainable_parameters,
 )
+from ..shadows.neighbours import attach_rows, explicit_neighbours, seeded_neighbours
+from ..theory.assessment import GroupSettings
+from ..theory.constants import Constants
+from ..theory.history import StepHistory, TimeSpent
+from . import measure
 from .measure import default_probe_size
-from .neighbours import attach_rows, explicit_neighbours, seeded_neighbours
+from .optimizer_rule import optimizer_reason
 from .probe import PerExampleLoss, ProbeRows, model_losses
-from .reading import EpochReading
-from .sinks import RunSinks
+from .settings import NOT_GIVEN, ConstantSettings, ProbeSettings, resolve_settings
 
 __all__ = ["StabilityTracker", "LockstepWarning", "AssumptionWarning", "ShadowFaultWarning"]
 
@@ -67,6 +69,9 @@ class StabilityTracker:
 
     Use ``for batch in tracker.batches(loader)`` in place of ``for batch in loader`` and call
     ``tracker.finish_epoch()`` after each epoch; the shadows step inside ``optimizer.step()``.
+    ``constant_settings=ConstantSettings(...)`` and ``probe_settings=ProbeSettings(...)`` group
+    the flat keywords ``constants``, ``estimate_every``, ``estimate_options``, ``loss_bound`` and
+    ``probe_set``, ``probe_size`` (either form; one option given both ways is a TypeError).
     """
 
     def __new__(cls, *args: Any, shadow_group: Any = None, **kwargs: Any) -> StabilityTracker:
@@ -87,21 +92,23 @@ class StabilityTracker:
         shadows: int = 4,
         swap: Sequence[tuple[int, Any]] | None = None,
         replacements: Dataset | None = None,
-        probe_set: Dataset | None = None,
+        probe_set: Dataset | None = NOT_GIVEN,
         log_dir: str | Path | None = None,
         seed: int = 0,
         audit: bool = True,
-        constants: Constants | str | None = None,
+        constants: Constants | str | None = NOT_GIVEN,
         delta: float = 0.05,
         before_step: Callable[[nn.Module], Any] | None = None,
         lazy_fork: bool = True,
-        probe_size: int | None = None,
+        probe_size: int | None = NOT_GIVEN,
         engine: str = "auto",
-        loss_bound: float | None = None,
-        estimate_every: int = 1,
-        estimate_options: dict[str, Any] | None = None,
+        loss_bound: float | None = NOT_GIVEN,
+        estimate_every: int = NOT_GIVEN,
+        estimate_options: dict[str, Any] | None = NOT_GIVEN,
         preserve_host_rng: bool | None = None,
         shadow_group: Any = None,
+        constant_settings: ConstantSettings | None = None,
+        probe_settings: ProbeSettings | None = None,
     ) -> None:
         if shadow_group is not None:   # StabilityTracker(...) itself builds a spread tracker
             raise LockstepError(
@@ -109,6 +116,14 @@ class StabilityTracker:
                 "shadow parallelism replicates the main run on every rank, which data-parallel "
                 "tracking does not; use StabilityTracker(model, optimizer, shadow_group=group, "
                 "...) on every rank with a replicated loop instead")
+        chosen = resolve_settings(
+            {"constant_settings": constant_settings, "probe_settings": probe_settings},
+            {"constants": constants, "estimate_every": estimate_every,
+             "estimate_options": estimate_options, "loss_bound": loss_bound,
+             "probe_set": probe_set, "probe_size": probe_size})
+        constants, estimate_every = chosen["constants"], chosen["estimate_every"]
+        estimate_options, loss_bound = chosen["estimate_options"], chosen["loss_bound"]
+        probe_set, probe_size = chosen["probe_set"], chosen["probe_size"]
         if not isinstance(model, nn.Module):
             raise TypeError("model must be a torch.nn.Module")
         if isinstance(model, DistributedDataParallel):
@@ -655,13 +670,13 @@ class StabilityTracker:
         return self._estimated
 
     def advise(self, target: float | None = None, **options: Any) -> Any:
-        """Stop suggestions from the readings so far (``sgdstab.advice.StopAdvice``).
+        """Stop suggestions from the readings so far (``sgdstab.outputs.advice.StopAdvice``).
 
         With a constant step size and batch size the budget projection uses the planner (a
         ``TrainingPlan`` built from the run); otherwise it extrapolates the recorded bound.
-        ``options`` go to ``sgdstab.advice.advise``.
+        ``options`` go to ``sgdstab.outputs.advice.advise``.
         """
-        from .advice import TrainingPlan, advise
+        from ..outputs.advice import TrainingPlan, advise
 
         if "plan" not in options and self.history.steps:
             step_sizes, batch_sizes = self.history.step_sizes(), self.history.batch_sizes()

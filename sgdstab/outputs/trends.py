@@ -1,6 +1,7 @@
 """How a run's readings evolve: readings in, divergence acceleration, the bound's budget.
 
-Pure functions of ``EpochReading`` objects (or history.jsonl dicts) used by ``sgdstab.advice``:
+Pure functions of ``EpochReading`` objects (or history.jsonl dicts) used by
+``sgdstab.outputs.advice``:
 
 - ``acceleration_epoch``: the epoch after which the measured divergence grows faster than
   linearly. Let ``D_e`` be the mean divergence over the shadows at epoch ``e`` (``D_0 = 0``) and
@@ -210,7 +211,7 @@ def acceleration_in(readings: Sequence[EpochReading], table: np.ndarray, consecu
 
 def _planner() -> Any:
     try:
-        from . import bounds
+        from ..theory import bounds
     except ImportError:
         return None
     return getattr(bounds, "max_steps", None)

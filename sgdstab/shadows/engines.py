@@ -1,12 +1,12 @@
 """Choosing the shadow engine: stacked, per-shadow, or batched (vmap).
 
 ``"per_shadow"`` steps each shadow as its own module with its own optimizer: exact for any
-optimizer and model. ``"stacked"`` (``sgdstab.stacked``) steps all forked shadows of a model made
-of Linear layers and element-wise activations as batched matrix products with a hand-written
-backward; ``"batched"`` (``sgdstab.batched``) steps them together with ``vmap`` for other models
-that are pure functions of their parameters. Both stacked engines need an element-wise optimizer
-and fall back to per-shadow stepping, with an ``EngineFallbackWarning`` saying why, for anything
-they cannot follow.
+optimizer and model. ``"stacked"`` (``sgdstab.shadows.stacked``) steps all forked shadows of a
+model made of Linear layers and element-wise activations as batched matrix products with a
+hand-written backward; ``"batched"`` (``sgdstab.shadows.batched``) steps them together with
+``vmap`` for other models that are pure functions of their parameters. Both stacked engines need
+an element-wise optimizer and fall back to per-shadow stepping, with an ``EngineFallbackWarning``
+saying why, for anything they cannot follow.
 
 ``"auto"`` takes the stacked engine where it can run and times it against per-shadow stepping on
 the run's own batch at the first step after the shadows fork, keeping the faster

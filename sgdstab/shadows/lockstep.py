@@ -1,4 +1,4 @@
-"""The shadow engine: neighbour specs, row substitution in a batch, RNG replay, lazy fork.
+"""The shadow engine: neighbour specs, row substitution in a batch, RNG replay (``rng``), lazy fork.
 
 A *shadow* is a copy of the user's model trained on a neighbouring dataset: the training set with
 one example swapped. It sees the very batches the main run saw, in the same order, with the swapped
@@ -8,17 +8,28 @@ so dropout masks and in-loop augmentation match the main run.
 
 from __future__ import annotations
 
-import contextlib
 import copy
 import math
-import random
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import torch
 from torch import nn
+
+from .errors import LockstepError
+from .grouped import (
+    GROUPED_OPTIMIZERS,
+    GROUPED_STEP_BYTES,
+    _optimizer_hooks,
+    _OwnersState,
+    _plain_setting,
+    grouped_step_refusal,
+)
+from .parameters import parameters_finite, squared_distance, trainable_parameters
+from .rng import HostRngGuard, preserved_rng
+from .rows import batch_length, select_rows, substitute_rows
 
 __all__ = [
     "NeighbourSpec",
@@ -32,31 +43,12 @@ __all__ = [
     "PerShadowEngine",
     "StepGroup",
     "squared_distance",
+    "parameters_finite",
+    "trainable_parameters",
     "GROUPED_OPTIMIZERS",
     "GROUPED_STEP_BYTES",
     "grouped_step_refusal",
 ]
-
-# Optimizers (exact classes) whose foreach step over many runs' parameters at once was checked to
-# give every parameter the very bits that stepping each run with its own optimizer gives, with
-# either kernel path (tests/test_grouped_step.py steps both side by side over several steps). On CPU
-# torch's foreach ops loop over the tensors with the same per-tensor kernels.
-# NAdam, RAdam and ASGD are left out: their foreach steps differed in the last bits (2.6e-7,
-# 7.5e-9 and 1.5e-7 after six steps of a small CNN, torch 2.13 CPU).
-GROUPED_OPTIMIZERS: tuple[type[torch.optim.Optimizer], ...] = (
-    torch.optim.SGD, torch.optim.Adam, torch.optim.AdamW, torch.optim.RMSprop,
-    torch.optim.Adagrad, torch.optim.Adamax, torch.optim.Adadelta, torch.optim.Rprop,
-)
-
-# The per-shadow engine steps shadows together only while their gradients, all alive at once
-# until the one step, stay within this many bytes: the saving is Python and call overhead per
-# optimizer call, which matters for small models only.
-GROUPED_STEP_BYTES = 4 << 20
-
-
-class LockstepError(ValueError):
-    """An input the lockstep engine cannot follow exactly (a clear refusal, never a guess)."""
-
 
 @dataclass(frozen=True)
 class NeighbourSpec:
@@ -74,159 +66,6 @@ class NeighbourSpec:
 
     def describe(self) -> dict[str, Any]:
         return {"index": self.index, "origin": self.origin, "source_index": self.source_index}
-
-
-@contextlib.contextmanager
-def preserved_rng() -> Iterator[None]:
-    """Run a block without disturbing torch's CPU RNG, Python's ``random`` or NumPy's global RNG."""
-    torch_state = torch.get_rng_state()
-    python_state = random.getstate()
-    numpy_state = np.random.get_state()
-    try:
-        yield
-    finally:
-        torch.set_rng_state(torch_state)
-        random.setstate(python_state)
-        np.random.set_state(numpy_state)
-
-
-class HostRngGuard:
-    """Keeps Python's ``random`` and NumPy's global RNG as they were across the shadows' steps.
-
-    Only torch's RNG is replayed for the shadows. Saving the host states costs ~70 us a step, so
-    with ``mode=None`` they are guarded during the first epoch and, after it, at every
-    ``sample_every``-th step only (~2 us a step), where the guard also checks whether the
-    shadows' steps draw from them (``used``); once a draw is seen, guarding stays on at every
-    step. ``mode=True`` always guards, ``mode=False`` never does.
-    """
-
-    def __init__(self, mode: bool | None = None, sample_every: int = 32) -> None:
-        self.mode = mode
-        self.used = False
-        self.sample_every = sample_every
-
-    def save(self, first_epoch: bool, step: int = 0) -> tuple[Any, Any] | None:
-        if self.mode is False:
-            return None
-        if self.mode is None and not self.used and not first_epoch and \
-                step % self.sample_every:
-            return None
-        return random.getstate(), np.random.get_state()
-
-    def restore(self, states: tuple[Any, Any]) -> bool:
-        """Put the states back; True when this is the first time a draw was detected."""
-        python_state, numpy_state = states
-        detected = False
-        if self.mode is None and not self.used:
-            now: Any = np.random.get_state()   # the legacy tuple (name, keys, pos, ...)
-            if random.getstate() != python_state or now[2:] != numpy_state[2:] or \
-                    not np.array_equal(now[1], numpy_state[1]):
-                self.used = detected = True
-        random.setstate(python_state)
-        np.random.set_state(numpy_state)
-        return detected
-
-
-def batch_length(batch: Any) -> int | None:
-    """The number of rows of a collated batch (dim 0 of its first tensor), or None."""
-    if isinstance(batch, torch.Tensor):
-        return int(batch.shape[0]) if batch.dim() > 0 else None
-    if isinstance(batch, Mapping):
-        for value in batch.values():
-            length = batch_length(value)
-            if length is not None:
-                return length
-        return None
-    if isinstance(batch, (list, tuple)):
-        for value in batch:
-            length = batch_length(value)
-            if length is not None:
-                return length
-        return None
-    return None
-
-
-def _is_leaf_list(value: Any) -> bool:
-    """A list or tuple of plain values (e.g. collated strings), one per row."""
-    return isinstance(value, (list, tuple)) and all(
-        not isinstance(item, (torch.Tensor, Mapping, list, tuple)) for item in value
-    )
-
-
-def substitute_rows(batch: Any, row: Any, positions: Sequence[int], rows: int, path: str = "batch"
-                    ) -> Any:
-    """Return ``batch`` with rows ``positions`` replaced by row 0 of the one-row batch ``row``.
-
-    Only the leaves that change are copied (cloned); everything else is shared with ``batch``.
-    ``rows`` is the batch's number of rows. Structures that do not line up raise LockstepError.
-    """
-    if isinstance(batch, torch.Tensor):
-        if not isinstance(row, torch.Tensor):
-            raise LockstepError(f"{path}: the batch holds a tensor but the replacement holds "
-                                f"{type(row).__name__}")
-        if batch.dim() == 0 or batch.shape[0] != rows:
-            raise LockstepError(f"{path}: tensor of shape {tuple(batch.shape)} has no row "
-                                f"dimension of size {rows}; cannot substitute a row")
-        if row.dim() == 0 or row.shape[0] != 1 or row.shape[1:] != batch.shape[1:]:
-            raise LockstepError(f"{path}: replacement row of shape {tuple(row.shape)} does not fit "
-                                f"batch rows of shape {tuple(batch.shape[1:])}")
-        out = batch.clone()
-        replacement = row[0].to(dtype=batch.dtype, device=batch.device)
-        for position in positions:
-            out[position] = replacement
-        return out
-    if isinstance(batch, Mapping):
-        if not isinstance(row, Mapping) or set(row.keys()) != set(batch.keys()):
-            raise LockstepError(f"{path}: replacement keys do not match the batch keys "
-                                f"{sorted(map(str, batch.keys()))}")
-        changed = {key: substitute_rows(value, row[key], positions, rows, f"{path}[{key!r}]")
-                   for key, value in batch.items()}
-        try:
-            return type(batch)(changed)  # type: ignore[call-arg]  # dict-like classes take a dict
-        except TypeError:
-            return changed
-    if isinstance(batch, (list, tuple)):
-        if _is_leaf_list(batch) and len(batch) == rows and isinstance(row, (list, tuple)) \
-                and len(row) == 1 and _is_leaf_list(row):
-            out_list = list(batch)
-            for position in positions:
-                out_list[position] = row[0]
-            return type(batch)(out_list) if isinstance(batch, tuple) else out_list
-        if not isinstance(row, (list, tuple)) or len(row) != len(batch):
-            raise LockstepError(f"{path}: replacement structure (length "
-                                f"{len(row) if isinstance(row, (list, tuple)) else 'n/a'}) does "
-                                f"not match the batch (length {len(batch)})")
-        items = [substitute_rows(value, other, positions, rows, f"{path}[{number}]")
-                 for number, (value, other) in enumerate(zip(batch, row))]
-        if isinstance(batch, tuple):
-            if hasattr(batch, "_fields"):  # namedtuple
-                return type(batch)(*items)
-            return tuple(items)
-        return items
-    # A plain value shared by the whole batch (e.g. a flag): it must agree with the replacement.
-    if batch != row:
-        raise LockstepError(f"{path}: non-tensor value {batch!r} differs from the replacement's "
-                            f"{row!r} and is not one value per row")
-    return batch
-
-
-def select_rows(batch: Any, rows: slice | Sequence[int], length: int) -> Any:
-    """The sub-batch of ``rows`` (a slice or index list) of a collated batch of ``length`` rows."""
-    if isinstance(batch, torch.Tensor):
-        if batch.dim() > 0 and batch.shape[0] == length:
-            return batch[rows] if isinstance(rows, slice) else batch[list(rows)]
-        return batch
-    if isinstance(batch, Mapping):
-        return {key: select_rows(value, rows, length) for key, value in batch.items()}
-    if isinstance(batch, (list, tuple)):
-        if _is_leaf_list(batch) and len(batch) == length:
-            picked = batch[rows] if isinstance(rows, slice) else [batch[i] for i in rows]
-            return type(batch)(picked) if isinstance(batch, tuple) else list(picked)
-        items = [select_rows(value, rows, length) for value in batch]
-        if isinstance(batch, tuple):
-            return type(batch)(*items) if hasattr(batch, "_fields") else tuple(items)
-        return items
-    return batch
 
 
 @dataclass
@@ -290,90 +129,6 @@ class Shadow:
     @property
     def active(self) -> bool:
         return self.forked and self.fault is None
-
-
-def parameters_finite(params: Sequence[torch.Tensor]) -> bool:
-    """Whether every parameter is finite, in one fused norm call (a norm that overflows, i.e.
-    entries beyond ~1e19 in float32, counts as non-finite: such a run has diverged anyway)."""
-    with torch.no_grad():
-        try:
-            norms = torch._foreach_norm(list(params))
-        except (AttributeError, RuntimeError):   # pragma: no cover - older or exotic builds
-            return all(bool(torch.isfinite(p).all()) for p in params)
-        return bool(torch.isfinite(torch.stack(norms)).all())
-
-
-def squared_distance(a: torch.Tensor, b: torch.Tensor | None = None, chunk: int = 1 << 16
-                     ) -> float:
-    """``sum((a - b)**2)`` (or ``sum(a**2)``) in float64, converted a chunk at a time so that no
-    float64 copy of a whole large tensor is made (epoch-end peak memory)."""
-    with torch.no_grad():
-        flat_a = a.detach().reshape(-1)
-        flat_b = None if b is None else b.detach().reshape(-1)
-        total = 0.0
-        for start in range(0, flat_a.numel(), chunk):
-            part = flat_a[start:start + chunk].double()
-            if flat_b is not None:
-                part = part - flat_b[start:start + chunk].double()
-            total += float(torch.dot(part, part))
-        return total
-
-
-def trainable_parameters(model: nn.Module) -> list[tuple[str, nn.Parameter]]:
-    return [(name, p) for name, p in model.named_parameters() if p.requires_grad]
-
-
-class _OwnersState(dict):  # type: ignore[type-arg]
-    """A grouped optimizer's state: each parameter's entry is the one its shadow's own optimizer
-    holds (looked up at every access, so forks and checkpoint loads that replace a shadow
-    optimizer's state are followed)."""
-
-    def __init__(self, owners: dict[int, torch.optim.Optimizer]) -> None:
-        super().__init__()
-        self.owners = owners
-
-    def __getitem__(self, p: Any) -> Any:
-        return self.owners[id(p)].state[p]
-
-    def get(self, p: Any, default: Any = None) -> Any:
-        state = self.owners[id(p)].state
-        return state[p] if p in state else default
-
-    def __contains__(self, p: object) -> bool:
-        owner = self.owners.get(id(p))
-        return owner is not None and p in owner.state
-
-
-def _plain_setting(value: Any) -> bool:
-    if value is None or isinstance(value, (bool, int, float, str)):
-        return True
-    return isinstance(value, tuple) and all(isinstance(v, (int, float)) for v in value)
-
-
-def grouped_step_refusal(model: nn.Module, optimizer: torch.optim.Optimizer) -> str:
-    """Why the per-shadow engine must call each shadow's optimizer on its own ('' when one
-    foreach step of the optimizer's class over all shadows' parameters gives the same bits)."""
-    if type(optimizer) not in GROUPED_OPTIMIZERS:
-        return f"{type(optimizer).__name__} is not checked for grouped stepping"
-    for group in optimizer.param_groups:
-        for key in ("fused", "differentiable", "capturable"):
-            if group.get(key):
-                return f"the optimizer is {key}"
-        if not all(_plain_setting(v) for k, v in group.items() if k != "params"):
-            return "a setting is not a plain number (a tensor step size?)"
-    for module in model.modules():
-        if isinstance(module, (nn.Embedding, nn.EmbeddingBag)) and module.sparse:
-            return "an embedding has sparse gradients"
-    return ""
-
-
-def _optimizer_hooks(optimizer: torch.optim.Optimizer) -> bool:
-    """Whether step hooks would run around ``optimizer.step()`` (its own or global ones)."""
-    from torch.optim import optimizer as module
-
-    return bool(getattr(module, "_global_optimizer_pre_hooks", True)) or \
-        bool(getattr(module, "_global_optimizer_post_hooks", True)) or \
-        bool(optimizer._optimizer_step_pre_hooks) or bool(optimizer._optimizer_step_post_hooks)
 
 
 class PerShadowEngine:

@@ -10,7 +10,7 @@ __all__ = ["configure", "run"]
 
 def configure(parser: argparse.ArgumentParser) -> None:
     """Add the report command's arguments to ``parser``."""
-    from .cli_types import number
+    from .argtypes import number
 
     parser.add_argument("run_dir", help="a run directory (holding history.jsonl)")
     parser.add_argument("--out", default=None,
@@ -22,7 +22,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Write the report; 0 on success, 2 for a missing or empty run, 3 without matplotlib."""
-    from .report import write_report
+    from ..outputs.report import write_report
 
     try:
         page = write_report(args.run_dir, out_dir=args.out, target=args.target)

@@ -35,10 +35,10 @@ import torch.distributed as dist
 from torch.nn.parallel import DistributedDataParallel
 from torch.utils._pytree import tree_flatten
 
+from ..outputs.reading import EpochReading
+from ..shadows.lockstep import LockstepError, NeighbourSpec, Shadow, preserved_rng
 from . import measure
-from .lockstep import LockstepError, NeighbourSpec, Shadow, preserved_rng
 from .probe import model_losses, summarise_probe
-from .reading import EpochReading
 from .tracker import LockstepWarning, ShadowFaultWarning, StabilityTracker
 
 __all__ = ["SpreadStabilityTracker", "RemoteShadow", "DEFAULT_SHADOW_TIMEOUT"]

@@ -118,7 +118,7 @@ def _short(value: float) -> str:
 
 def versioned(record: Mapping[str, Any]) -> dict[str, Any]:
     """``record`` with the schema version and the writing package's version added."""
-    from . import __version__
+    from .. import __version__
 
     return {**record, "schema_version": SCHEMA_VERSION, "sgdstab_version": __version__}
 

@@ -70,7 +70,7 @@ class GlazeGrader(nn.Module):
 
 def demo_constants(*datasets: TensorDataset) -> Any:
     """Closed-form constants of softmax cross-entropy on these rows (see the module docstring)."""
-    from .constants import Constants
+    from ..theory.constants import Constants
 
     norm = max(float(d.tensors[0].norm(dim=1).max()) for d in datasets)
     return Constants(lipschitz=math.sqrt(2.0) * norm, smoothness=norm ** 2 / 2, convex=True)
@@ -112,7 +112,7 @@ def run_demo(out_dir: str | Path = "sgdstab-demo", epochs: int = 12, shadows: in
 
     Returns the readings, the advice, the report's path, the run directory and the model's
     weights after every epoch (``weights``)."""
-    from .tracker import StabilityTracker
+    from ..tracking.tracker import StabilityTracker
 
     stream = sys.stdout
     out = Path(out_dir)
@@ -177,7 +177,7 @@ def _advise(tracker: Any) -> Any:
 
 def _report(out: Path) -> Path | None:
     try:
-        from .report import write_report
+        from ..outputs.report import write_report
     except ImportError:
         return None
     try:
@@ -221,7 +221,7 @@ def _print_table(readings: list[Any], stream: Any) -> None:
 def _print_advice(advice: Any, stream: Any) -> None:
     """The stop advice once: the verdict when the advice has one, else the suggestion and the
     criteria that did not decide it."""
-    from .labels import criterion_label
+    from ..outputs.labels import criterion_label
 
     record = advice.to_dict()
     verdict = record.get("verdict")
