@@ -43,7 +43,6 @@ OVER_THE_LIMIT: dict[str, str] = {
     # each imports, which can be imported first); a split has to change those tests too.
     "theory/bounds.py": "the closed forms and their high-probability conversion",
     "theory/divergence.py": "the divergence recursions",
-    "theory/planner.py": "schedules, planned bounds, inverse solvers",
 }
 
 

@@ -7,8 +7,8 @@ L-Lipschitz, beta-smooth, optionally gamma-strongly convex, with values in [0, M
 
 This module is also the base of the two built on it, whose names stay importable from here:
 sgdstab.theory.divergence (expansivity, the divergence recursions, the non-convex t0 bound of a
-schedule, a recorded run's bounds) and sgdstab.theory.planner (schedules, planned bounds,
-inversions).
+schedule, a recorded run's bounds), sgdstab.theory.schedules (step-size schedules),
+sgdstab.theory.planned (planned bounds) and sgdstab.theory.planner (their inversions).
 
 Provenance (what was checked with the search tool, and what is from memory):
 - Hardt, Recht & Singer 2016, "Train faster, generalize better: stability of stochastic gradient
@@ -441,16 +441,14 @@ _ELSEWHERE = {
          "nonconvex_schedule_bound", "RunBounds", "assess_run"),
         "divergence",
     ),
-    **dict.fromkeys(
-        ("TARGET_BOUNDS", "SCHEDULE_KINDS", "Schedule", "planned_bounds", "planned_bound",
-         "PlanAnswer", "max_steps", "max_step_size", "min_train_size"),
-        "planner",
-    ),
+    **dict.fromkeys(("SCHEDULE_KINDS", "Schedule"), "schedules"),
+    **dict.fromkeys(("TARGET_BOUNDS", "planned_bounds", "planned_bound"), "planned"),
+    **dict.fromkeys(("PlanAnswer", "max_steps", "max_step_size", "min_train_size"), "planner"),
 }  # fmt: skip
 
 
 def __getattr__(name: str) -> Any:
-    # Resolved on first use (PEP 562): both modules import from this one, so importing them here
+    # Resolved on first use (PEP 562): those modules import from this one, so importing them here
     # at load time would make `import sgdstab.theory.planner` fail when it is the first import.
     if name not in _ELSEWHERE:
         raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
