@@ -38,10 +38,6 @@ OVER_THE_LIMIT: dict[str, str] = {
     # landed, so that their changes merge into the moved files.
     "shadows/batched.py": "parallel work on the batched engine",
     "shadows/stacked.py": "parallel work on the stacked engine",
-    # tests/test_bounds.py pins these three modules' structure (where each name is defined, what
-    # each imports, which can be imported first); a split has to change those tests too.
-    "theory/bounds.py": "the closed forms and their high-probability conversion",
-    "theory/divergence.py": "the divergence recursions",
 }
 
 

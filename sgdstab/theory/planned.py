@@ -31,8 +31,8 @@ from .bounds import (
     _strongly_convex_value,
     _train_size,
     check_regime,
-    high_probability_gap,
 )
+from .confidence import high_probability_gap
 from .divergence import _SAMPLING, _trajectory, nonconvex_schedule_bound
 from .schedules import Schedule, _as_schedule, _Recorded
 

@@ -25,8 +25,8 @@ from .bounds import (
     _positive,
     _regime,
     _steps,
-    high_probability_gap,
 )
+from .confidence import high_probability_gap
 from .planned import TARGET_BOUNDS, planned_bound, planned_bounds
 from .schedules import SCHEDULE_KINDS, Schedule, _as_schedule
 
