@@ -281,12 +281,18 @@ class BatchedEngine:
         assert stack is not None
         versions = [t._version for t in self._constants.values()]
         try:
-            gradients, finite = self._stepper.gradients(stack, group, self._constants,
-                                                        self._views)
-            if [t._version for t in self._constants.values()] != versions:
-                raise _CannotBatch("the model changes its buffers in the forward pass")
-            finite = self._stepper.hooks(stack, gradients, finite, self._views,
-                                         self.gradient_sync, self.before_step)
+            # a few slots at a time where the stepper can (no hooks, no constants): each chunk's
+            # gradients and activations are freed before the next chunk's are made
+            done = None
+            if self.gradient_sync is None and self.before_step is None and not self._constants:
+                done = self._stepper.step_in_chunks(stack, group, self._views)
+            if done is None:
+                gradients, finite = self._stepper.gradients(stack, group, self._constants,
+                                                            self._views)
+                if [t._version for t in self._constants.values()] != versions:
+                    raise _CannotBatch("the model changes its buffers in the forward pass")
+                finite = self._stepper.hooks(stack, gradients, finite, self._views,
+                                             self.gradient_sync, self.before_step)
         except LockstepError:
             raise
         except Exception as error:  # noqa: BLE001 - any failure of the batched path falls back
@@ -294,6 +300,8 @@ class BatchedEngine:
                 self._constants[name].copy_(backup)
             self._fall_back(_reason(error))
             return self._fallback_step(shadows, group, step)
+        if done is not None:
+            return self._freeze_faulted(stack, *done, step)
         return self._apply(stack, gradients, finite, step)
 
     def freeze_non_finite(self, shadows: Sequence[Shadow], steps: int) -> list[Shadow]:
@@ -322,6 +330,11 @@ class BatchedEngine:
                step: int) -> list[Shadow]:
         """The optimizer step over the stack; slots whose loss was not finite keep their state."""
         held = self._stepper.update(stack, gradients, finite)
+        return self._freeze_faulted(stack, finite, held, step)
+
+    def _freeze_faulted(self, stack: _Stack, finite: torch.Tensor, held: Mapping[int, SlotState],
+                        step: int) -> list[Shadow]:
+        """Slots whose loss was not finite go back to their state before the step, frozen."""
         # Per step only the losses are checked (as the per-shadow engine does); parameters that
         # turn non-finite with a finite loss are caught by the next loss or freeze_non_finite.
         if bool(finite.all()):
@@ -397,6 +410,7 @@ class BatchedEngine:
 
         if old is not None:
             old.views = None   # modules over the old slots alias its tensors
+            old.chunks.clear()   # so do the optimizers over runs of its slots
         stack = _stack_states(members, states, self._stepped, self._shapes, self._group_names,
                               self.main_optimizer, release)
         for member in members:

@@ -77,6 +77,9 @@ class _Stack:
         self.parameters = parameters
         self.optimizer = optimizer
         self.views: list[nn.Module] | None = None
+        # optimizers of the stack's class over slots [start, stop) (views), by (start, stop)
+        self.chunks: dict[tuple[int, int], tuple[torch.optim.Optimizer,
+                                                 dict[str, torch.Tensor]]] = {}
 
     def slice(self, j: int, copy: bool = True) -> SlotState:
         """Slot ``j``'s own state: copies, or (``copy=False``) views into the stack."""
