@@ -233,18 +233,22 @@ class _StackStepper:
                             value.data_ptr() == mine.data_ptr()):
                         mine.copy_(value)   # replaced rather than updated in place
                 elif isinstance(value, torch.Tensor) and value.shape == view.shape:
-                    pending.setdefault((name, key), []).append(value)   # new, per element
+                    # new, per element: copied into its stacked tensor at once, so that no more
+                    # than one chunk's piece is held beside it
+                    if (name, key) not in pending:
+                        pending[(name, key)] = torch.empty(stacked.shape, dtype=value.dtype)
+                    pending[(name, key)][start:stop].copy_(value)
                 else:
                     pending[(name, key)] = value   # shared by all slots: every chunk's agrees
         return held
 
     def finish_slots(self, stack: _Stack, pending: dict[tuple[str, str], Any]) -> None:
-        """After every chunk's ``update_slots``: new per-element state joined over the slots,
-        shared state written back once."""
+        """After every chunk's ``update_slots``: the new per-element state and the shared state
+        go into the stack's optimizer, once."""
         for (name, key), value in pending.items():
             stacked = stack.parameters[name]
             entry = stack.optimizer.state[stacked]
-            entry[key] = torch.cat(value) if isinstance(value, list) else value
+            entry[key] = value
         pending.clear()
         self.updates += 1
 
