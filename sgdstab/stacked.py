@@ -61,9 +61,9 @@ AUTO_OVERRIDE_VARIABLE = "SGDSTAB_AUTO_ENGINE"
 AUTO_TIMED_STEPS = 3
 # Bytes of gradients and activations one stacked step may hold at once (estimated from the
 # shapes): above it the slots are stepped a chunk at a time, at least one slot per chunk. 16 MiB
-# keeps the 64-256-256-10 MLP at batch 256 with 10 slots (about 1.7 MB a slot) in one chunk, where
-# batching slots pays; a 1024-wide layer's gradient alone is 4 MiB a slot, and one product per
-# slot is already a large one there.
+# keeps a 64-256-256-10 MLP at batch 32-128 (0.5-1.0 MB a slot, 10 slots) in one chunk, where
+# batching slots pays (at batch 256, 1.7 MB a slot, it makes chunks of 9); a 1024-wide layer's
+# gradient alone is 4 MiB a slot, and one product per slot is already a large one there.
 STEP_MEMORY_BUDGET = 16 * 2**20
 
 _ACTIVATIONS: dict[type[nn.Module], str] = {
