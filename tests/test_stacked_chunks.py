@@ -16,8 +16,10 @@ from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import StabilityTracker
 from sgdstab import stacked as stacked_module
+from sgdstab.batched import BatchedEngine
 from sgdstab.lockstep import StepGroup
 from sgdstab.stacked import StackedEngine
+from sgdstab.stacking import _move_slots
 
 WHOLE = 2**62   # a budget no test model reaches: one chunk
 
@@ -158,3 +160,39 @@ def test_chunk_size_follows_the_budget(monkeypatch):
     for budget, expected in [(1, 1), (per_slot - 1, 1), (per_slot, 1), (3 * per_slot, 3)]:
         monkeypatch.setattr(stacked_module, "STEP_MEMORY_BUDGET", budget)
         assert stepper.chunk_size(stack, group) == expected
+
+
+@pytest.mark.parametrize("moves", [
+    {},                                  # nothing moves
+    {0: 1, 1: 2, 2: 0},                  # one cycle
+    {1: 0, 2: 1, 3: 2},                  # a chain (slot 0 dropped, the rest compacted)
+    {0: 3, 3: 0, 1: 4, 4: 5, 5: 1},      # a swap and a three-cycle
+    {2: 5, 3: 6, 6: 2},                  # a chain ending in a cycle's slot, and a new slot 5
+])
+def test_slots_move_in_place_as_a_gather_would(moves):
+    # reference: the same moves done by gathering from a copy of the untouched tensor
+    buffer = torch.arange(7 * 3, dtype=torch.float32).reshape(7, 3)
+    expected = buffer.clone()
+    for dest, source in moves.items():
+        expected[dest] = buffer[source]
+    _move_slots(buffer, moves)
+    assert torch.equal(buffer, expected)
+
+
+def test_restacking_in_place_matches_building_new_stacks(monkeypatch):
+    # the in-place restack (slots moved within tensors with room for every run) against the
+    # path that builds new stacked tensors at every fork and removal: every bit the same
+    original, taken = BatchedEngine._restack_in_place, []
+
+    def counted(self, old, members):
+        taken.append(original(self, old, members))
+        return taken[-1]
+
+    monkeypatch.setattr(BatchedEngine, "_restack_in_place", counted)
+    _, in_place, expected, _ = _run(1, monkeypatch, optimizer="adam")
+    assert taken.count(True) >= 2   # later forks and the audit's removal, in place
+    monkeypatch.setattr(BatchedEngine, "_restack_in_place", lambda self, old, members: False)
+    _, rebuilt, got, _ = _run(1, monkeypatch, optimizer="adam")
+    assert all(torch.equal(a, b) for a, b in zip(_state(in_place), _state(rebuilt)))
+    assert [r.divergence for r in expected] == [r.divergence for r in got]
+    assert in_place.engine._stack.buffers["0.weight"].shape[0] == 7   # reference + 6 runs
