@@ -6,7 +6,9 @@ batched matrix product over all runs (``torch.bmm``); a run whose swapped exampl
 batch reads the main batch's inputs as they are (a broadcast view, not a copy). The backward pass
 is written out by hand (the transposed products and torch's own activation derivatives), the
 loss's derivative comes from autograd on the stacked outputs only, and the update is one
-optimizer step over the stacked tensors (foreach where the optimizer offers it).
+optimizer step over the stacked tensors (foreach where the optimizer offers it). Where one step's
+gradients and activations would exceed ``STEP_MEMORY_BUDGET``, forward, backward and update run a
+chunk of slots at a time (the same values, bit for bit), so a step holds one chunk's share.
 
 Why no single product of the shared inputs against all runs' concatenated first-layer weights:
 that matrix product does not round every run's block of columns alike (measured on this torch:
