@@ -417,6 +417,8 @@ def main(argv: list[str] | None = None) -> int:
                         help="comma-separated batch sizes (default 32,128,256; 32 with --quick)")
     parser.add_argument("--mlp-only", action="store_true", help="leave out the CNN setups")
     parser.add_argument("--no-memory", action="store_true", help="skip the memory children")
+    parser.add_argument("--memory-only", action="store_true",
+                        help="only the memory children (no timing tables)")
     parser.add_argument("--memory-child", nargs=2, metavar=("KIND", "K"), help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.memory_child:
@@ -436,7 +438,8 @@ def main(argv: list[str] | None = None) -> int:
     print(f"torch {torch.__version__}, {os.cpu_count()} cores; every figure is a ratio of "
           "epochs run in the same round (first epoch of each loop excluded, except 'K1 ep1')")
     start = time.perf_counter()
-    worst = {int(t): _table(int(t), setups, rounds) for t in args.threads.split(",")}
+    worst = {} if args.memory_only else {int(t): _table(int(t), setups, rounds)
+                                         for t in args.threads.split(",")}
     mem = None
     if not args.no_memory:
         for pinned in (False, True):
