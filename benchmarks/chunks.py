@@ -20,7 +20,7 @@ from collections.abc import Iterator
 import overhead
 import torch
 
-from sgdstab import stacked as stacked_module
+from sgdstab.shadows import stacked as stacked_module
 
 WHOLE = 2**62   # no chunking
 

@@ -15,11 +15,11 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import StabilityTracker
-from sgdstab import stacked as stacked_module
-from sgdstab.batched import BatchedEngine
-from sgdstab.lockstep import StepGroup
-from sgdstab.stacked import StackedEngine
-from sgdstab.stacking import _move_slots
+from sgdstab.shadows import stacked as stacked_module
+from sgdstab.shadows.batched import BatchedEngine
+from sgdstab.shadows.lockstep import StepGroup
+from sgdstab.shadows.stacked import StackedEngine
+from sgdstab.shadows.stacking import _move_slots
 
 WHOLE = 2**62   # a budget no test model reaches: one chunk
 
