@@ -258,8 +258,9 @@ def _charts(readings: Sequence[EpochReading], stop: int | None) -> list[Chart]:
                 color="C3", linestyle="--", label="train + expected bound")
     canvas.line(epochs, [t + g for t, g in zip(train, estimate)], color="C1", linestyle=":",
                 label="train + gap estimate")
-    losses = Chart("losses.png", "Training and holdout losses of the main model on the probe "
-                   "examples, with the two sums the stop criteria minimise.",
+    losses = Chart("losses.png", "The main model's training loss (on the probe's training "
+                   "examples) and holdout loss (on every held-out example no shadow swapped in), "
+                   "with the two sums the stop criteria minimise.",
                    canvas.png(stop, "no loss recorded"))
     return [divergence, stability, gap, losses]
 
