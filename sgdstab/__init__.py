@@ -6,6 +6,12 @@ Names are imported on first use, so ``import sgdstab.bounds`` (pure numpy/scipy)
 from __future__ import annotations
 
 import importlib
+import importlib.abc
+import importlib.machinery
+import importlib.util
+import sys
+import warnings
+from types import ModuleType
 from typing import Any
 
 __version__ = "0.1.0"
@@ -26,6 +32,7 @@ _WHERE = {
     "NeighbourSpec": "shadows.lockstep",
     "EpochReading": "outputs.reading",
     "read_history": "outputs.reading",
+    "readings_to_frame": "outputs.reading",
     "TimeSpent": "theory.history",
     "StopAdvice": "outputs.advice",
     "advise": "outputs.advice",
@@ -33,6 +40,48 @@ _WHERE = {
 }
 
 __all__ = sorted(_WHERE)
+
+#: Module paths of the flat layout (0.1.0) and where each module lives now. ``import
+#: sgdstab.reading`` and ``from sgdstab.reading import readings_to_frame`` keep working: the old
+#: name is the new module object itself (with a DeprecationWarning naming the new path).
+MOVED_MODULES = {
+    "advice": "outputs.advice", "assessment": "theory.assessment", "batched": "shadows.batched",
+    "checkpoint": "tracking.checkpoint", "cli_bound": "cli.bound",
+    "cli_report": "cli.report", "cli_types": "cli.argtypes", "constants": "tracking.constants",
+    "demo": "cli.demo", "distributed": "tracking.distributed", "divergence": "theory.divergence",
+    "engines": "shadows.engines", "history": "theory.history", "labels": "outputs.labels",
+    "loaders": "shadows.loaders", "lockstep": "shadows.lockstep", "measure": "tracking.measure",
+    "neighbours": "shadows.neighbours", "planner": "theory.planner", "probe": "tracking.probe",
+    "reading": "outputs.reading", "report": "outputs.report", "sinks": "outputs.sinks",
+    "spread": "tracking.spread", "stacked": "shadows.stacked", "stacking": "shadows.stacking",
+    "stackstep": "shadows.stackstep", "tracker": "tracking.tracker", "trends": "outputs.trends",
+    "verdict": "outputs.verdict",
+}
+
+
+class _MovedModuleFinder(importlib.abc.MetaPathFinder, importlib.abc.Loader):
+    """Resolves ``sgdstab.<old name>`` to the module at its new path (the same object)."""
+
+    def find_spec(self, fullname: str, path: Any = None, target: Any = None
+                  ) -> importlib.machinery.ModuleSpec | None:
+        package, _, name = fullname.rpartition(".")
+        if package != __name__ or name not in MOVED_MODULES:
+            return None
+        return importlib.util.spec_from_loader(fullname, self)
+
+    def create_module(self, spec: importlib.machinery.ModuleSpec) -> ModuleType:
+        new = f"{__name__}.{MOVED_MODULES[spec.name.rpartition('.')[2]]}"
+        warnings.warn(f"{spec.name} moved to {new}; the old path will be removed in a later "
+                      "release (names exported by sgdstab itself are unaffected)",
+                      DeprecationWarning, stacklevel=2)
+        return importlib.import_module(new)
+
+    def exec_module(self, module: ModuleType) -> None:
+        """The module at the new path is already executed."""
+
+
+if not any(isinstance(finder, _MovedModuleFinder) for finder in sys.meta_path):
+    sys.meta_path.append(_MovedModuleFinder())
 
 
 def __getattr__(name: str) -> Any:

@@ -35,6 +35,9 @@ def test_a_readings_repr_is_short_and_names_its_figures(tracked):
     assert len(text) < 400 < len(str(readings[-1].to_dict()))
     assert text.startswith("<EpochReading epoch 2, ")
     assert f"largest divergence (3 shadows) {max(readings[-1].divergence):.4g}" in text
+    # the held-out loss is measured on every unswapped held-out example (30 less the 3 swapped in)
+    assert readings[-1].holdout_count == 27
+    assert f"holdout loss (27 examples) {readings[-1].holdout_loss:.4g}" in text
 
 
 def test_a_readings_html_repr_is_a_table_with_its_notes_escaped():

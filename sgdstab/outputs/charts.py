@@ -253,13 +253,14 @@ def _charts(readings: Sequence[EpochReading], stop: int | None) -> list[Chart]:
     train = [_number(r.train_loss) for r in readings]
     canvas.line(epochs, train, color="C0", marker="o", markersize=3, label="train (probe)")
     canvas.line(epochs, [_number(r.holdout_loss) for r in readings], color="C2", marker="s",
-                markersize=3, label="holdout (probe)")
+                markersize=3, label="holdout (every unswapped held-out example)")
     canvas.line(epochs, [t + _number(r.expected_bound) for t, r in zip(train, readings)],
                 color="C3", linestyle="--", label="train + expected bound")
     canvas.line(epochs, [t + g for t, g in zip(train, estimate)], color="C1", linestyle=":",
                 label="train + gap estimate")
-    losses = Chart("losses.png", "Training and holdout losses of the main model on the probe "
-                   "examples, with the two sums the stop criteria minimise.",
+    losses = Chart("losses.png", "The main model's training loss (on the probe's training "
+                   "examples) and holdout loss (on every held-out example no shadow swapped in), "
+                   "with the two sums the stop criteria minimise.",
                    canvas.png(stop, "no loss recorded"))
     return [divergence, stability, gap, losses]
 

@@ -75,7 +75,8 @@ class EpochReading:
         if self.train_loss is not None:
             parts.append(("train loss (probe)", _short(self.train_loss)))
         if self.holdout_loss is not None:
-            parts.append(("holdout loss (probe)", _short(self.holdout_loss)))
+            count = f"{self.holdout_count} examples" if self.holdout_count else "probe"
+            parts.append((f"holdout loss ({count})", _short(self.holdout_loss)))
         if self.expected_bound is not None:
             parts.append(("expected stability bound", _short(self.expected_bound)))
         if self.high_probability_gap is not None:

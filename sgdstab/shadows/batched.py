@@ -35,6 +35,8 @@ from .stacking import (
     _layout,
     _load_into,
     _module_over,
+    _move_slots,
+    _same,
     _Stack,
     _stack_states,
     _state_from_module,
@@ -281,12 +283,18 @@ class BatchedEngine:
         assert stack is not None
         versions = [t._version for t in self._constants.values()]
         try:
-            gradients, finite = self._stepper.gradients(stack, group, self._constants,
-                                                        self._views)
-            if [t._version for t in self._constants.values()] != versions:
-                raise _CannotBatch("the model changes its buffers in the forward pass")
-            finite = self._stepper.hooks(stack, gradients, finite, self._views,
-                                         self.gradient_sync, self.before_step)
+            # a few slots at a time where the stepper can (no hooks, no constants): each chunk's
+            # gradients and activations are freed before the next chunk's are made
+            done = None
+            if self.gradient_sync is None and self.before_step is None and not self._constants:
+                done = self._stepper.step_in_chunks(stack, group, self._views)
+            if done is None:
+                gradients, finite = self._stepper.gradients(stack, group, self._constants,
+                                                            self._views)
+                if [t._version for t in self._constants.values()] != versions:
+                    raise _CannotBatch("the model changes its buffers in the forward pass")
+                finite = self._stepper.hooks(stack, gradients, finite, self._views,
+                                             self.gradient_sync, self.before_step)
         except LockstepError:
             raise
         except Exception as error:  # noqa: BLE001 - any failure of the batched path falls back
@@ -294,6 +302,8 @@ class BatchedEngine:
                 self._constants[name].copy_(backup)
             self._fall_back(_reason(error))
             return self._fallback_step(shadows, group, step)
+        if done is not None:
+            return self._freeze_faulted(stack, *done, step)
         return self._apply(stack, gradients, finite, step)
 
     def freeze_non_finite(self, shadows: Sequence[Shadow], steps: int) -> list[Shadow]:
@@ -322,6 +332,11 @@ class BatchedEngine:
                step: int) -> list[Shadow]:
         """The optimizer step over the stack; slots whose loss was not finite keep their state."""
         held = self._stepper.update(stack, gradients, finite)
+        return self._freeze_faulted(stack, finite, held, step)
+
+    def _freeze_faulted(self, stack: _Stack, finite: torch.Tensor, held: Mapping[int, SlotState],
+                        step: int) -> list[Shadow]:
+        """Slots whose loss was not finite go back to their state before the step, frozen."""
         # Per step only the losses are checked (as the per-shadow engine does); parameters that
         # turn non-finite with a finite loss are caught by the next loss or freeze_non_finite.
         if bool(finite.all()):
@@ -374,6 +389,8 @@ class BatchedEngine:
         is built, so the peak is the old stack plus one parameter's new tensors, not two whole
         stacks."""
         old = self._stack
+        if old is not None and self._restack_in_place(old, members):
+            return
         states = [old.slice(old.slot[id(m)], copy=False) if old is not None and id(m) in old.slot
                   else m.state if m.state is not None else self._state_of(m) for m in members]
         borrowed = [s for m, s in zip(members, states) if old is not None and id(m) in old.slot]
@@ -397,12 +414,84 @@ class BatchedEngine:
 
         if old is not None:
             old.views = None   # modules over the old slots alias its tensors
+            old.chunks.clear()   # so do the optimizers over runs of its slots
+        # room for every run the engine holds (the reference and each shadow), so that later
+        # forks and removals move slots in place (``_restack_in_place``)
         stack = _stack_states(members, states, self._stepped, self._shapes, self._group_names,
-                              self.main_optimizer, release)
+                              self.main_optimizer, release, capacity=len(self.shadows) + 1)
         for member in members:
             member.state = None
         del states
         self._stack = stack
+
+    def _restack_in_place(self, old: _Stack, members: list[BatchedShadow]) -> bool:
+        """Restack within the old stack's tensors, which have room for ``members``: the kept
+        runs' slots move in place, a newly forked run's state is copied into its slot, so no
+        second stacked tensor is ever built (building one beside the old one was the peak of
+        epoch 1 while the shadows fork). False, with nothing changed, when the old stack's
+        tensors cannot take ``members`` (too few slots, state the buffers do not hold, or a new
+        run's optimizer state of another kind); ``_restack`` then builds new tensors."""
+        count = len(members)
+        sources = [old.slot.get(id(m)) for m in members]
+        entries = {name: old.optimizer.state.get(t, {}) for name, t in old.parameters.items()}
+        buffered: list[tuple[Any, torch.Tensor]] = []
+        for name, stacked in old.parameters.items():
+            buffer = old.buffers.get(name)
+            if buffer is None or buffer.shape[0] < count or \
+                    buffer.data_ptr() != stacked.data_ptr():
+                return False
+            buffered.append((name, buffer))
+            for key, value in entries[name].items():
+                if isinstance(value, torch.Tensor) and value.shape == stacked.shape:
+                    buffer = old.buffers.get((name, key))
+                    if buffer is None or buffer.data_ptr() != value.data_ptr():
+                        return False
+                    buffered.append(((name, key), buffer))
+        incoming = {}
+        for j, (member, source) in enumerate(zip(members, sources)):
+            if source is not None:
+                continue
+            state = member.state if member.state is not None else self._state_of(member)
+            for name, entry in entries.items():
+                own = state.optimizer.get(name, {})
+                if tuple(own) != tuple(entry) or not all(
+                        (name, key) in old.buffers if isinstance(value, torch.Tensor) and
+                        value.shape == old.parameters[name].shape else _same(own[key], value)
+                        for key, value in entry.items()):
+                    return False
+            incoming[j] = state
+        moves = {j: source for j, source in enumerate(sources)
+                 if source is not None and source != j}
+        old.views = None
+        old.chunks.clear()
+        for key, buffer in buffered:
+            _move_slots(buffer, moves)
+            for j, state in incoming.items():
+                value = state.parameters[key] if isinstance(key, str) else \
+                    state.optimizer[key[0]][key[1]]
+                buffer[j].copy_(value)
+        parameters = {name: old.buffers[name][:count] for name in old.parameters}
+        groups = []
+        for main_group, names in zip(self.main_optimizer.param_groups, self._group_names):
+            settings = {key: value for key, value in main_group.items() if key != "params"}
+            groups.append({**settings,
+                           "params": [parameters[n] for n in names if n in parameters]})
+        optimizer = type(self.main_optimizer)(groups)  # type: ignore[call-arg]
+        for name, entry in entries.items():
+            if entry:
+                optimizer.state[parameters[name]] = {
+                    key: old.buffers[(name, key)][:count] if (name, key) in old.buffers
+                    and isinstance(value, torch.Tensor) and
+                    value.shape == old.parameters[name].shape else value
+                    for key, value in entry.items()}
+        stack = _Stack(list(members), parameters, optimizer)
+        stack.buffers = old.buffers
+        old.parameters, old.buffers = {}, {}
+        old.optimizer.state.clear()
+        for member in members:
+            member.state = None
+        self._stack = stack
+        return True
 
     def _views(self) -> list[nn.Module]:
         assert self._stack is not None

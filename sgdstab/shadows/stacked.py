@@ -6,7 +6,9 @@ batched matrix product over all runs (``torch.bmm``); a run whose swapped exampl
 batch reads the main batch's inputs as they are (a broadcast view, not a copy). The backward pass
 is written out by hand (the transposed products and torch's own activation derivatives), the
 loss's derivative comes from autograd on the stacked outputs only, and the update is one
-optimizer step over the stacked tensors (foreach where the optimizer offers it).
+optimizer step over the stacked tensors (foreach where the optimizer offers it). Where one step's
+gradients and activations would exceed ``STEP_MEMORY_BUDGET``, forward, backward and update run a
+chunk of slots at a time (the same values, bit for bit), so a step holds one chunk's share.
 
 Why no single product of the shared inputs against all runs' concatenated first-layer weights:
 that matrix product does not round every run's block of columns alike (measured on this torch:
@@ -39,17 +41,32 @@ import torch.nn.functional as F
 from torch import nn
 
 from .batched import BatchedEngine
-from .lockstep import LossOf, NeighbourSpec, PerShadowEngine, Shadow, StepGroup, substitute_rows
-from .stacking import _CannotBatch, _Stack
-from .stackstep import _StackStepper
+from .lockstep import (
+    LockstepError,
+    LossOf,
+    NeighbourSpec,
+    PerShadowEngine,
+    Shadow,
+    StepGroup,
+    substitute_rows,
+)
+from .stacking import SlotState, _CannotBatch, _Stack
+from .stackstep import Views, _StackStepper
 
-__all__ = ["StackedEngine", "stacked_refusal", "AUTO_OVERRIDE_VARIABLE", "AUTO_TIMED_STEPS"]
+__all__ = ["StackedEngine", "stacked_refusal", "AUTO_OVERRIDE_VARIABLE", "AUTO_TIMED_STEPS",
+           "STEP_MEMORY_BUDGET"]
 
 # Environment variable fixing what engine="auto" picks ("stacked" or "per_shadow") instead of
 # timing them (tests, and anyone who needs the same engine in every process).
 AUTO_OVERRIDE_VARIABLE = "SGDSTAB_AUTO_ENGINE"
 # Steps of each candidate timed by engine="auto", after one warm-up step each.
 AUTO_TIMED_STEPS = 3
+# Bytes of gradients and activations one stacked step may hold at once (estimated from the
+# shapes): above it the slots are stepped a chunk at a time, at least one slot per chunk. 16 MiB
+# keeps a 64-256-256-10 MLP at batch 32-128 (0.5-1.0 MB a slot, 10 slots) in one chunk, where
+# batching slots pays (at batch 256, 1.7 MB a slot, it makes chunks of 9); a 1024-wide layer's
+# gradient alone is 4 MiB a slot, and one product per slot is already a large one there.
+STEP_MEMORY_BUDGET = 16 * 2**20
 
 _ACTIVATIONS: dict[type[nn.Module], str] = {
     nn.ReLU: "relu", nn.LeakyReLU: "leaky_relu", nn.Tanh: "tanh", nn.Sigmoid: "sigmoid",
@@ -255,12 +272,7 @@ class _HandStepper(_StackStepper):
             if not isinstance(batch, (list, tuple)) or len(batch) != 2 or \
                     not all(isinstance(t, torch.Tensor) for t in batch):
                 raise _CannotBatch("the batch is not an (inputs, targets) pair of tensors")
-            hits = {}
-            for j, member in enumerate(stack.members):
-                positions = np.flatnonzero(indices == member.spec.index)
-                if positions.size:
-                    hits[j] = (positions, substitute_rows(batch, member.row, positions.tolist(),
-                                                          len(indices)))
+            hits = self._hits(stack, batch, indices)
             torch.set_rng_state(rng_state)   # dropout masks as the main run drew them
             gradients, losses = self._one_batch(stack.parameters, batch, hits)
             if not self.verified and number == 0:
@@ -274,10 +286,107 @@ class _HandStepper(_StackStepper):
         assert total is not None
         return total, finite
 
+    # -- a few slots at a time ----------------------------------------------------------------
+    def chunk_size(self, stack: _Stack, group: StepGroup) -> int:
+        """How many slots one chunk steps: as many as keep the chunk's gradients and saved
+        activations (estimated from the shapes) within ``STEP_MEMORY_BUDGET``, at least one."""
+        first = next(iter(stack.parameters.values()))
+        size = first.element_size()
+        gradients = sum(t[0].numel() for t in stack.parameters.values()) * size
+        if len(group.batches) > 1:
+            gradients *= 2   # the running sum over the batches and one batch's gradients
+        widths = [stack.parameters[layer.weight].shape[1] for layer in self.layers
+                  if isinstance(layer, _Linear)]
+        # per row: each Linear output (or the activation overwriting it), each Dropout output,
+        # two gradients of the widest layer in the backward, the slot's own input rows
+        kept = sum(widths) + 2 * max(widths) + \
+            sum(1 for layer in self.layers if isinstance(layer, _Dropout)) * max(widths)
+        rows = max((_rows(batch) for batch in group.batches), default=0)
+        fan_in = stack.parameters[self.layers[0].weight].shape[2] \
+            if isinstance(self.layers[0], _Linear) else 0
+        per_slot = gradients + rows * (kept + fan_in) * size
+        return max(1, STEP_MEMORY_BUDGET // max(per_slot, 1))
+
+    def step_in_chunks(self, stack: _Stack, group: StepGroup, views: Views
+                       ) -> tuple[torch.Tensor, dict[int, SlotState]] | None:
+        """Forward, backward and update of a few slots at a time (``chunk_size``), so the step
+        holds one chunk's gradients and activations instead of every slot's. Every slot gets
+        the values of the whole-stack step: each slot's products, loss and update read only its
+        own tensors, the dropout masks are drawn once and shared, and the loss takes the same
+        path in every chunk. None (step the whole stack) when one chunk holds every slot, for a
+        loss evaluated slot by slot, or for targets that would take another loss path."""
+        slots = len(stack.members)
+        size = self.chunk_size(stack, group)
+        if size >= slots or not self.loss_kind:
+            return None
+        prepared = []
+        for batch, indices, rng_state in zip(group.batches, group.indices, group.rng_states):
+            if not isinstance(batch, (list, tuple)) or len(batch) != 2 or \
+                    not all(isinstance(t, torch.Tensor) for t in batch):
+                return None   # the whole-stack path says why it cannot step it
+            hits = self._hits(stack, batch, indices)
+            targets = [batch[1], *(other[1] for _, other in hits.values())]
+            if self.loss_kind == "cross_entropy" and not all(
+                    t.dim() == 1 and not t.is_floating_point() and bool((t >= 0).all())
+                    for t in targets):
+                return None
+            prepared.append((batch, hits, rng_state))
+        finite = torch.ones(slots, dtype=torch.bool)
+        held: dict[int, SlotState] = {}
+        noises: dict[tuple[int, int], torch.Tensor | None] = {}
+        pending: dict[tuple[str, str], Any] = {}
+        for start in range(0, slots, size):
+            stop = min(start + size, slots)
+            try:
+                parameters = {name: t[start:stop] for name, t in stack.parameters.items()}
+                total: dict[str, torch.Tensor] | None = None
+                for number, (batch, hits, rng_state) in enumerate(prepared):
+                    mine = {j - start: hit for j, hit in hits.items() if start <= j < stop}
+                    torch.set_rng_state(rng_state)
+                    gradients, losses = self._one_batch(parameters, batch, mine,
+                                                        (noises, number))
+                    if not self.verified and number == 0 and start == 0:
+                        self._verify(views, batch, rng_state, gradients)
+                    finite[start:stop] &= torch.isfinite(losses)
+                    if total is None:
+                        total = gradients
+                    else:
+                        for name in total:
+                            total[name] += gradients[name]
+                    del gradients
+                assert total is not None
+                held.update(self.update_slots(stack, total, finite, start, stop, pending))
+                del total
+            except LockstepError:
+                raise
+            except Exception as error:
+                if start == 0:
+                    raise   # nothing is updated yet: the engine falls back as for a whole step
+                raise LockstepError(
+                    f"the stacked step failed at slot {start} after slots 0-{start - 1} were "
+                    f"updated ({type(error).__name__}: {error})") from error
+        self.finish_slots(stack, pending)
+        return finite, held
+
+    def _hits(self, stack: _Stack, batch: Any, indices: np.ndarray
+              ) -> dict[int, tuple[np.ndarray, Any]]:
+        """The slots whose swapped example is in the batch: its positions and their batch."""
+        hits = {}
+        for j, member in enumerate(stack.members):
+            positions = np.flatnonzero(indices == member.spec.index)
+            if positions.size:
+                hits[j] = (positions, substitute_rows(batch, member.row, positions.tolist(),
+                                                      len(indices)))
+        return hits
+
     # -- one batch, all slots -----------------------------------------------------------------
     def _one_batch(self, parameters: Mapping[str, torch.Tensor], batch: Any,
-                   hits: Mapping[int, tuple[np.ndarray, Any]]
+                   hits: Mapping[int, tuple[np.ndarray, Any]],
+                   shared: tuple[dict[tuple[int, int], torch.Tensor | None], int] | None = None
                    ) -> tuple[dict[str, torch.Tensor], torch.Tensor]:
+        """Gradients and losses of the slots ``parameters`` hold. ``shared`` is a cache of the
+        dropout masks by (batch number, layer) and this batch's number, when the slots are
+        stepped a chunk at a time: the first chunk draws the masks, the others reuse them."""
         inputs, targets = batch
         rows = inputs.shape[0]
         first = self.layers[0]
@@ -304,7 +413,7 @@ class _HandStepper(_StackStepper):
             saved: list[tuple[torch.Tensor, Any] | None] = []
             a = x
             fresh = False   # whether ``a`` is a Linear output nothing else reads
-            for layer in self.layers:
+            for position, layer in enumerate(self.layers):
                 if isinstance(layer, _Linear):
                     out = torch.bmm(a, parameters[layer.weight].transpose(1, 2))
                     if layer.bias is not None:
@@ -313,7 +422,13 @@ class _HandStepper(_StackStepper):
                     a, fresh = out, True
                     continue
                 if isinstance(layer, _Dropout):
-                    noise = layer.noise(a)
+                    if shared is None:
+                        noise = layer.noise(a)
+                    else:
+                        masks, key = shared[0], (shared[1], position)
+                        if key not in masks:
+                            masks[key] = layer.noise(a)
+                        noise = masks[key]
                     out = a if noise is None else a * noise
                     saved.append((a, noise))
                     a, fresh = out, False
@@ -379,6 +494,11 @@ class _HandStepper(_StackStepper):
         """The optimizer's foreach kernels over the stack where the user left the choice to
         torch."""
         _fastest_kernel(group)
+
+
+def _rows(batch: Any) -> int:
+    inputs = batch[0] if isinstance(batch, (list, tuple)) and batch else None
+    return int(inputs.shape[0]) if isinstance(inputs, torch.Tensor) and inputs.dim() else 0
 
 
 def _fastest_kernel(group: dict[str, Any]) -> None:

@@ -77,6 +77,12 @@ class _Stack:
         self.parameters = parameters
         self.optimizer = optimizer
         self.views: list[nn.Module] | None = None
+        # optimizers of the stack's class over slots [start, stop) (views), by (start, stop)
+        self.chunks: dict[tuple[int, int], tuple[torch.optim.Optimizer,
+                                                 dict[str, torch.Tensor]]] = {}
+        # the tensors with room for ``capacity`` slots that ``parameters`` and the per-element
+        # optimizer state are the first len(members) slots of, by name and (name, state key)
+        self.buffers: dict[Any, torch.Tensor] = {}
 
     def slice(self, j: int, copy: bool = True) -> SlotState:
         """Slot ``j``'s own state: copies, or (``copy=False``) views into the stack."""
@@ -123,10 +129,19 @@ def _layout(model: nn.Module, optimizer: torch.optim.Optimizer
     return group_names, stepped, shapes, constant_names
 
 
+def _into_buffer(values: Sequence[torch.Tensor], capacity: int) -> torch.Tensor:
+    """``torch.stack(values)`` as the first slots of a tensor with room for ``capacity``."""
+    buffer = torch.empty((max(capacity, len(values)), *values[0].shape), dtype=values[0].dtype)
+    for j, value in enumerate(values):
+        buffer[j].copy_(value)
+    return buffer
+
+
 def _stack_states(members: list[BatchedShadow], states: Sequence[SlotState],
                   stepped: Sequence[str], shapes: Mapping[str, torch.Size],
                   group_names: Sequence[Sequence[str]], main_optimizer: torch.optim.Optimizer,
-                  release: Callable[[str, str | None], None] | None = None) -> _Stack:
+                  release: Callable[[str, str | None], None] | None = None,
+                  capacity: int = 0) -> _Stack:
     """A stack of ``states`` (one per member, in order): the ``stepped`` parameters stacked,
     under a new optimizer of the main one's class and groups with their state stacked alike
     (per-element entries stacked, shared ones checked equal and kept once). ``release(name,
@@ -146,16 +161,20 @@ def _stack_states(members: list[BatchedShadow], states: Sequence[SlotState],
                 raise LockstepError(f"optimizer state {key!r} of {name} differs between "
                                     "runs that should share it")
     parameters = {}
+    buffers: dict[Any, torch.Tensor] = {}
+    count = len(states)
     entries: dict[str, dict[str, Any]] = {}
     for name in stepped:
-        parameters[name] = torch.stack([s.parameters[name] for s in states])
+        buffers[name] = _into_buffer([s.parameters[name] for s in states], capacity)
+        parameters[name] = buffers[name][:count]
         if release is not None:
             release(name, None)
         entry = {}
         for key in kinds[name]:
             values = [s.optimizer[name][key] for s in states]
             if _per_element(key, values[0], shapes[name]):
-                entry[key] = torch.stack(values)
+                buffers[(name, key)] = _into_buffer(values, capacity)
+                entry[key] = buffers[(name, key)][:count]
             else:
                 entry[key] = _clone(values[0])
             del values
@@ -170,7 +189,29 @@ def _stack_states(members: list[BatchedShadow], states: Sequence[SlotState],
     for name, entry in entries.items():
         if entry:
             optimizer.state[parameters[name]] = entry
-    return _Stack(list(members), parameters, optimizer)
+    stack = _Stack(list(members), parameters, optimizer)
+    stack.buffers = buffers
+    return stack
+
+
+def _move_slots(buffer: torch.Tensor, moves: Mapping[int, int]) -> None:
+    """Slot ``d`` of ``buffer`` takes what slot ``moves[d]`` holds, for every ``d`` at once (the
+    sources are distinct), in place: a slot is overwritten only after it was read, and a cycle of
+    moves sets one slot aside (one slot's copy)."""
+    pending = dict(moves)
+    readers = {source: dest for dest, source in pending.items()}
+    aside: dict[int, torch.Tensor] = {}
+    while pending:
+        free = next((d for d in pending if d not in readers), None)
+        if free is None:   # only cycles are left: keep one slot aside, then it is free
+            free = next(iter(pending))
+            aside[free] = buffer[free].clone()
+            readers.pop(free)
+            continue
+        source = pending.pop(free)
+        buffer[free].copy_(aside.pop(source) if source in aside else buffer[source])
+        if readers.get(source) == free:
+            readers.pop(source)
 
 
 def _state_from_module(model: nn.Module, optimizer: torch.optim.Optimizer,

@@ -18,7 +18,7 @@ from torch import nn
 from torch.func import functional_call, grad_and_value, vmap
 
 from .lockstep import LossOf, StepGroup, substitute_rows
-from .stacking import SlotState, _CannotBatch, _Stack, _stacked_leaves
+from .stacking import SlotState, _CannotBatch, _clone, _Stack, _stacked_leaves
 
 # Above this relative gap between the reference slot's gradient and an unbatched gradient of the
 # same parameters on the same batch and RNG state, the batched forward is not the main run's
@@ -187,6 +187,89 @@ class _StackStepper:
         self.updates += 1
         return held
 
+    # -- a few slots at a time -----------------------------------------------------------------
+    def step_in_chunks(self, stack: _Stack, group: StepGroup, views: Views
+                       ) -> tuple[torch.Tensor, dict[int, SlotState]] | None:
+        """Gradients and update of the stack a few slots at a time, or None when this stepper
+        takes the whole stack at once (the vmap stepper always does). Returns which slots
+        stayed finite and the state before the step of those that did not."""
+        return None
+
+    def update_slots(self, stack: _Stack, gradients: Mapping[str, torch.Tensor],
+                     finite: torch.Tensor, start: int, stop: int,
+                     pending: dict[tuple[str, str], Any]) -> dict[int, SlotState]:
+        """The optimizer step over slots ``start`` to ``stop`` - 1 only: an optimizer of the
+        stack's class whose parameters are those slots (views into the stack), with the stack's
+        per-element state viewed the same way, so it updates the stack in place. Element-wise
+        optimizers compute each element from that element alone, so each slot gets the values
+        the whole-stack step gives it (tested bit for bit). ``gradients`` hold these slots only,
+        ``finite`` every slot. State entries the step creates or that are shared by all slots
+        (step counters) are collected in ``pending`` for ``finish_slots``. Returns the state
+        before the step of each of these slots whose loss was not finite."""
+        held = {j: stack.slice(j) for j in range(start, stop) if not finite[j]}
+        optimizer, views = self._chunk_optimizer(stack, start, stop)
+        for main_group, chunk_group in zip(self.main_optimizer.param_groups,
+                                           optimizer.param_groups):
+            for key, value in main_group.items():
+                if key != "params":
+                    chunk_group[key] = value
+            self._tune(chunk_group)
+        for name, stacked in stack.parameters.items():
+            view = views[name]
+            entry = stack.optimizer.state.get(stacked, {})
+            optimizer.state[view] = {
+                key: value[start:stop] if _spans_slots(value, stacked) else _clone(value)
+                for key, value in entry.items()}
+            view.grad = gradients[name]
+        optimizer.step()
+        for name, stacked in stack.parameters.items():
+            view = views[name]
+            view.grad = None
+            entry = stack.optimizer.state.get(stacked, {})
+            for key, value in optimizer.state.pop(view, {}).items():
+                if key in entry and _spans_slots(entry[key], stacked):
+                    mine = entry[key][start:stop]
+                    if not (isinstance(value, torch.Tensor) and
+                            value.data_ptr() == mine.data_ptr()):
+                        mine.copy_(value)   # replaced rather than updated in place
+                elif isinstance(value, torch.Tensor) and value.shape == view.shape:
+                    # new, per element: copied into its stacked tensor at once, so that no more
+                    # than one chunk's piece is held beside it
+                    if (name, key) not in pending:
+                        pending[(name, key)] = torch.empty(stacked.shape, dtype=value.dtype)
+                    pending[(name, key)][start:stop].copy_(value)
+                else:
+                    pending[(name, key)] = value   # shared by all slots: every chunk's agrees
+        return held
+
+    def finish_slots(self, stack: _Stack, pending: dict[tuple[str, str], Any]) -> None:
+        """After every chunk's ``update_slots``: the new per-element state and the shared state
+        go into the stack's optimizer, once."""
+        for (name, key), value in pending.items():
+            stacked = stack.parameters[name]
+            entry = stack.optimizer.state[stacked]
+            entry[key] = value
+        pending.clear()
+        self.updates += 1
+
+    def _chunk_optimizer(self, stack: _Stack, start: int, stop: int
+                         ) -> tuple[torch.optim.Optimizer, dict[str, torch.Tensor]]:
+        found = stack.chunks.get((start, stop))
+        if found is None:
+            views = {name: t[start:stop] for name, t in stack.parameters.items()}
+            name_of = {id(t): name for name, t in stack.parameters.items()}
+            groups = [{**{k: v for k, v in g.items() if k != "params"},
+                       "params": [views[name_of[id(p)]] for p in g["params"]]}
+                      for g in stack.optimizer.param_groups]
+            optimizer = type(stack.optimizer)(groups)  # type: ignore[call-arg]
+            found = stack.chunks[(start, stop)] = (optimizer, views)
+        return found
+
     def _tune(self, group: dict[str, Any]) -> None:
         """Adjust a stacked optimizer group's kernel choice after the settings are copied (the
         vmap engine keeps torch's own)."""
+
+
+def _spans_slots(value: Any, stacked: torch.Tensor) -> bool:
+    """Whether a stacked state entry holds one value per element of every slot."""
+    return isinstance(value, torch.Tensor) and value.shape == stacked.shape

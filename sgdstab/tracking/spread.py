@@ -386,6 +386,25 @@ class SpreadStabilityTracker(StabilityTracker):
             raise LockstepError(f"the ranks resumed at different points (epoch, steps) "
                                 f"{everyone}: load states saved at the same epoch end")
 
+    def close(self) -> None:
+        """Remove the hooks and close the writers, then wait (once, at most a minute) until
+        every rank of the shadow group has closed too: a rank that tore its process group down
+        while another was still writing its last files was seen to abort gloo's teardown."""
+        super().close()
+        if getattr(self, "_closed_together", False) or self.world_size < 2:
+            return
+        self._closed_together = True
+        try:
+            if self._monitored:
+                dist.monitored_barrier(group=self.shadow_group,
+                                       timeout=timedelta(seconds=min(60.0, self.shadow_timeout)),
+                                       wait_all_ranks=True)
+            else:
+                dist.barrier(group=self.shadow_group)
+        except Exception as error:   # noqa: BLE001 - the run is over; say so, do not raise
+            warnings.warn(f"rank {self.rank}: the other ranks of the shadow group did not all "
+                          f"close their trackers within a minute: {error}", stacklevel=2)
+
     def describe(self) -> dict[str, Any]:
         description = super().describe()
         description["spread"] = {
