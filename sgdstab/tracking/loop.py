@@ -76,7 +76,7 @@ def on_batch(tracker: StabilityTracker, batch: Any, indices: np.ndarray) -> None
     if tracker.audit_shadow is not None and tracker.audit_shadow.spec.index < 0:
         index = int(indices[0])
         row = select_rows(batch, [0], len(indices))
-        tracker.audit_shadow.spec = NeighbourSpec(index, None, "tracker", index)
+        tracker.audit_shadow.spec = NeighbourSpec(index, None, "self", index)
         tracker.audit_shadow.row = row
     group = tracker._group
     if tracker._has_buffers and not group.batches and \
