@@ -62,6 +62,9 @@ MOVED_MODULES = {
 class _MovedModuleFinder(importlib.abc.MetaPathFinder, importlib.abc.Loader):
     """Resolves ``sgdstab.<old name>`` to the module at its new path (the same object)."""
 
+    def __init__(self) -> None:
+        self.specs: dict[str, Any] = {}
+
     def find_spec(self, fullname: str, path: Any = None, target: Any = None
                   ) -> importlib.machinery.ModuleSpec | None:
         package, _, name = fullname.rpartition(".")
@@ -74,10 +77,14 @@ class _MovedModuleFinder(importlib.abc.MetaPathFinder, importlib.abc.Loader):
         warnings.warn(f"{spec.name} moved to {new}; the old path will be removed in a later "
                       "release (names exported by sgdstab itself are unaffected)",
                       DeprecationWarning, stacklevel=2)
-        return importlib.import_module(new)
+        module = importlib.import_module(new)
+        self.specs[new] = module.__spec__
+        return module
 
     def exec_module(self, module: ModuleType) -> None:
-        """The module at the new path is already executed."""
+        """The module at the new path is already executed; only its own ``__spec__``, which the
+        import system has just replaced with the old path's, is put back."""
+        module.__spec__ = self.specs[module.__name__]
 
 
 if not any(isinstance(finder, _MovedModuleFinder) for finder in sys.meta_path):

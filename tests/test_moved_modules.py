@@ -21,6 +21,8 @@ def test_an_old_module_path_is_the_moved_module(old):
         warnings.simplefilter("always")
         module = importlib.import_module(f"sgdstab.{old}")
     assert module is new
+    # the moved module keeps its own identity: relative imports inside it still resolve quietly
+    assert module.__spec__.name == new.__name__ and module.__package__ == new.__spec__.parent
     assert any(issubclass(w.category, DeprecationWarning) and new.__name__ in str(w.message)
                for w in caught)
 
