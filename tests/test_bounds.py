@@ -21,8 +21,9 @@ from scipy import stats
 from sgdstab.theory import bounds, divergence, planner
 
 BOUNDS_FILE = Path(bounds.__file__)
-# The modules that must load without torch: sgdstab.bounds and the two built on it.
-PURE_MODULES = ("bounds", "divergence", "planner")
+# The modules that must load without torch: sgdstab.bounds and the six built on it.
+PURE_MODULES = ("bounds", "confidence", "expansion", "divergence", "schedules", "planned",
+                "planner")
 
 # --- import hygiene ----------------------------------------------------------------------------
 
@@ -30,13 +31,25 @@ PURE_MODULES = ("bounds", "divergence", "planner")
 FIRST_USE = {
     # HRS 2016 convex case (from memory): 2 L^2 / n * alpha = 2 * 1 / 10 * 0.1 = 0.02.
     "bounds": "module.convex_bound([0.1], 10, 1.0).value",
+    # McDiarmid form (derived in confidence.py), one-sided, by hand: beta_n = 0, M = 1, n = 2,
+    # delta = e^-4: (2 n 0 + 1) sqrt(ln(e^4) / (2 n)) = sqrt(4 / 4) = 1.
+    "confidence": "module.high_probability_gap(0.0, 2, 1.0, __import__('math').exp(-4)).value",
+    # HRS 2016 smooth case (from memory): eta_t = 1 + alpha_t beta = 1 + 0.25 * 2.
+    "expansion": "module.expansion_smooth([0.25], 2.0)[0]",
     # SCIENCE.md §2 pathwise step: 0.25 after step 1, then 0.25 * ((4 - 1) 1.5 + 1) / 4 + 0.25.
     "divergence": "module.pathwise_divergence([0.5, 0.5], [4, 4], [1, 1], 1.0, [1.5, 1.5])[-1]",
+    # Step decay by hand: alpha_4 = 0.1 * 0.5 ** ((4 - 1) // 2) = 0.05.
+    "schedules": "module.Schedule('step-decay', 0.1, decay_factor=0.5, decay_every=2)"
+    ".step_sizes(4)[-1]",
+    # HRS 2016 convex case (from memory), 250 steps of 0.1: 2 L^2 / n * 25 = 2 / 1000 * 25.
+    "planned": "module.planned_bound(250, regime='convex', n=1000, lipschitz=1.0, "
+    "smoothness=4.0, schedule=0.1).value",
     # Convex, constant alpha: T = floor(target n / (2 L^2 alpha)) = floor(0.05 * 1000 / 0.2).
     "planner": "module.max_steps(0.05, regime='convex', n=1000, lipschitz=1.0, smoothness=4.0, "
     "schedule=0.1).value",
 }
-BY_HAND = {"bounds": 0.02, "divergence": 0.25 * 1.375 + 0.25, "planner": 250}
+BY_HAND = {"bounds": 0.02, "confidence": 1.0, "expansion": 1.5,
+           "divergence": 0.25 * 1.375 + 0.25, "schedules": 0.05, "planned": 0.05, "planner": 250}
 
 
 @pytest.mark.parametrize("name", PURE_MODULES)
@@ -112,12 +125,13 @@ def test_every_public_name_stays_importable_from_bounds(module):
         bounds.no_such_bound  # noqa: B018
 
 
-@pytest.mark.parametrize("first", ["planner", "divergence", "bounds"])
+@pytest.mark.parametrize("first", ["planner", "planned", "schedules", "divergence", "expansion",
+                                   "confidence", "bounds"])
 def test_any_of_the_modules_can_be_imported_first(first):
     code = f"import sgdstab.theory.{first}, sgdstab.bounds as b; print(b.Schedule.__module__)"
     result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert result.returncode == 0, result.stderr
-    assert result.stdout.strip() == "sgdstab.theory.planner"
+    assert result.stdout.strip() == "sgdstab.theory.schedules"
 
 
 # --- recursions reproduce the closed forms -------------------------------------------------------

@@ -15,7 +15,7 @@ from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from sgdstab import StabilityTracker
-from sgdstab.shadows import stacked as stacked_module
+from sgdstab.shadows import handstep as handstep_module
 from sgdstab.shadows.batched import BatchedEngine
 from sgdstab.shadows.lockstep import StepGroup
 from sgdstab.shadows.stacked import StackedEngine
@@ -49,7 +49,7 @@ def _optimizer(kind: str, model: nn.Module) -> torch.optim.Optimizer:
 
 def _run(budget: int, monkeypatch, *, optimizer: str = "momentum_decay", dropout: float = 0.2,
          loss=F.cross_entropy, epochs: int = 2, accumulate: bool = False, shadows: int = 5):
-    monkeypatch.setattr(stacked_module, "STEP_MEMORY_BUDGET", budget)
+    monkeypatch.setattr(handstep_module, "STEP_MEMORY_BUDGET", budget)
     data = _parcels()
     torch.manual_seed(1)
     model = nn.Sequential(nn.Linear(10, 24), nn.ReLU(), nn.Dropout(dropout), nn.Linear(24, 16),
@@ -127,7 +127,7 @@ def test_one_slot_chunks_and_gradient_accumulation(monkeypatch):
 def test_dropout_masks_stay_the_main_runs_in_chunks(monkeypatch):
     # null swaps in separate one-slot chunks read exactly 0: every chunk used the main run's
     # masks (a chunk drawing its own would move the null swaps off the reference)
-    monkeypatch.setattr(stacked_module, "STEP_MEMORY_BUDGET", 1)
+    monkeypatch.setattr(handstep_module, "STEP_MEMORY_BUDGET", 1)
     data = _parcels()
     torch.manual_seed(1)
     model = nn.Sequential(nn.Linear(10, 24), nn.ReLU(), nn.Dropout(0.5), nn.Linear(24, 3))
@@ -158,7 +158,7 @@ def test_chunk_size_follows_the_budget(monkeypatch):
     # 24+16+3, twice the widest 24, one Dropout at 24, the 10 inputs) = 16 x 125 floats
     per_slot = (715 + 16 * 125) * 4
     for budget, expected in [(1, 1), (per_slot - 1, 1), (per_slot, 1), (3 * per_slot, 3)]:
-        monkeypatch.setattr(stacked_module, "STEP_MEMORY_BUDGET", budget)
+        monkeypatch.setattr(handstep_module, "STEP_MEMORY_BUDGET", budget)
         assert stepper.chunk_size(stack, group) == expected
 
 

@@ -1,14 +1,15 @@
-"""Published stability bounds for SGD in closed form, and their high-probability conversion.
+"""Published stability bounds for SGD in closed form (high-probability conversion re-exported).
 
 Pure functions of numpy arrays; imports only numpy, scipy and the standard library, so it loads
 without torch. No function writes into its arguments. Notation follows Hardt, Recht & Singer 2016:
 step t (counted from 1) has step size alpha_t and batch size b_t, n training examples, the loss is
 L-Lipschitz, beta-smooth, optionally gamma-strongly convex, with values in [0, M].
 
-This module is also the base of the two built on it, whose names stay importable from here:
-sgdstab.theory.divergence (expansivity, the divergence recursions, the non-convex t0 bound of a
-schedule, a recorded run's bounds) and sgdstab.theory.planner (schedules, planned bounds,
-inversions).
+This module is also the base of the modules built on it, whose names stay importable from here:
+sgdstab.theory.confidence (the high-probability conversion), sgdstab.theory.expansion
+(expansivity of one step), sgdstab.theory.divergence (the divergence recursions, the non-convex t0
+bound of a schedule, a recorded run's bounds), sgdstab.theory.schedules (step-size schedules),
+sgdstab.theory.planned (planned bounds) and sgdstab.theory.planner (their inversions).
 
 Provenance (what was checked with the search tool, and what is from memory):
 - Hardt, Recht & Singer 2016, "Train faster, generalize better: stability of stochastic gradient
@@ -20,10 +21,7 @@ Provenance (what was checked with the search tool, and what is from memory):
   (alpha <= 1/beta, factor 1 - alpha gamma, limit 2L/(gamma n) on the divergence), the non-convex
   t0 lemma and the choice of t0 behind the non-convex closed form. The tests re-derive each
   closed form by hand.
-- Bousquet & Elisseeff 2002 (JMLR 2, "Stability and generalization"), Thm 12 form
-  2 beta + (4 n beta + M) sqrt(ln(1/delta) / (2n)): agrees with the restatement of that theorem in
-  Zhou, "Machine Learning", Thm 12.8, found with the search tool.
-- The McDiarmid form (bounded differences of the gap) is derived in high_probability_gap's comment.
+- Bousquet & Elisseeff 2002 and McDiarmid: see sgdstab.theory.confidence.
 """
 
 from __future__ import annotations
@@ -361,96 +359,25 @@ def nonconvex_bound(
 
 
 # ---------------------------------------------------------------------------------------------
-# High probability (McDiarmid; Bousquet & Elisseeff 2002)
-
-
-def _high_probability_inputs(stability, n, loss_bound, delta, source, assumptions):
-    n, delta = _train_size(n), _delta(delta)
-    if stability is None:
-        return None, _fails("no uniform stability bound", source, assumptions)
-    stability = float(stability)
-    if math.isnan(stability) or stability < 0:
-        raise ValueError(f"stability must be >= 0, got {stability!r}")
-    if loss_bound is None:
-        return None, _fails("loss bound (M) not declared", source, assumptions)
-    return (stability, n, _positive("loss_bound", loss_bound), delta), None
-
-
-def high_probability_gap(
-    stability: float | None,
-    n: float,
-    loss_bound: float | None,
-    delta: float,
-    two_sided: bool = False,
-) -> Bound:
-    """R - R_S <= beta_n + (2 n beta_n + M) sqrt(ln(1/delta) / (2n)) with probability >= 1 - delta.
-
-    two_sided: |R - R_S| <= the same with ln(2/delta). Source: McDiarmid's inequality
-    (McDiarmid 1989; derivation below), as used by Bousquet & Elisseeff 2002. Assumes A is
-    beta_n-uniformly stable under replacement of one example, loss in [0, M], i.i.d. sample of
-    size n.
-    """
-    # Derivation: replacing z_i moves R(A(S)) by <= beta_n and R_S(A(S)) by <= beta_n + M/n, so the
-    # gap D has bounded differences c = 2 beta_n + M/n, and |E D| <= beta_n. McDiarmid:
-    # P(D - E D >= eps) <= exp(-2 eps^2 / (n c^2)); solving for delta gives
-    # eps = c sqrt(n ln(1/delta) / 2) = (2 n beta_n + M) sqrt(ln(1/delta) / (2n)).
-    source = MCDIARMID + (", two-sided" if two_sided else ", one-sided")
-    assumptions = (
-        "A is beta_n-uniformly stable under replacement of one example",
-        "loss values in [0, M]",
-        "training examples drawn i.i.d.",
-    )
-    inputs, failed = _high_probability_inputs(stability, n, loss_bound, delta, source, assumptions)
-    if failed:
-        return failed
-    beta_n, n, m, delta = inputs
-    log_term = math.log((2.0 if two_sided else 1.0) / delta)
-    value = beta_n + (2 * n * beta_n + m) * math.sqrt(log_term / (2 * n))
-    return _holds(value, source, assumptions + (f"confidence 1 - delta = {1 - delta:.6g}",))
-
-
-def bousquet_elisseeff_gap(
-    stability: float | None, n: float, loss_bound: float | None, delta: float
-) -> Bound:
-    """R <= R_S + 2 beta + (4 n beta + M) sqrt(ln(1/delta) / (2n)) w.p. >= 1 - delta.
-
-    Source: Bousquet & Elisseeff 2002, Thm 12 (checked against a restatement). Assumes A is
-    beta-uniformly stable under removal of one example, loss in [0, M], i.i.d. sample of size n.
-    """
-    source = BOUSQUET_ELISSEEFF
-    assumptions = (
-        "A is beta-uniformly stable under removal of one example",
-        "loss values in [0, M]",
-        "training examples drawn i.i.d.",
-    )
-    inputs, failed = _high_probability_inputs(stability, n, loss_bound, delta, source, assumptions)
-    if failed:
-        return failed
-    beta, n, m, delta = inputs
-    value = 2 * beta + (4 * n * beta + m) * math.sqrt(math.log(1 / delta) / (2 * n))
-    return _holds(value, source, assumptions + (f"confidence 1 - delta = {1 - delta:.6g}",))
-
-
-# ---------------------------------------------------------------------------------------------
 # Names defined in the modules built on this one, importable from here on first use
 
 _ELSEWHERE = {
+    **dict.fromkeys(("high_probability_gap", "bousquet_elisseeff_gap"), "confidence"),
+    **dict.fromkeys(("expansion_convex", "expansion_strongly_convex", "expansion_smooth"),
+                    "expansion"),
     **dict.fromkeys(
-        ("expansion_convex", "expansion_strongly_convex", "expansion_smooth",
-         "expected_divergence", "pathwise_divergence", "all_index_pathwise",
+        ("expected_divergence", "pathwise_divergence", "all_index_pathwise",
          "nonconvex_schedule_bound", "RunBounds", "assess_run"),
         "divergence",
     ),
-    **dict.fromkeys(
-        ("TARGET_BOUNDS", "SCHEDULE_KINDS", "Schedule", "planned_bounds", "planned_bound",
-         "PlanAnswer", "max_steps", "max_step_size", "min_train_size"),
-        "planner",
-    ),
+    **dict.fromkeys(("SCHEDULE_KINDS", "Schedule"), "schedules"),
+    **dict.fromkeys(("TARGET_BOUNDS", "planned_bounds", "planned_bound"), "planned"),
+    **dict.fromkeys(("PlanAnswer", "max_steps", "max_step_size", "min_train_size"), "planner"),
 }  # fmt: skip
 
 
 def __getattr__(name: str) -> Any:
-    # Resolved on first use (PEP 562): both modules import from this one, so importing them here
+    # Resolved on first use (PEP 562): those modules import from this one, so importing them here
     # at load time would make `import sgdstab.theory.planner` fail when it is the first import.
     if name not in _ELSEWHERE:
         raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -1,10 +1,10 @@
 """Divergence recursions of SGD and the bounds of a recorded run.
 
-Expansivity of one gradient step, the growth recursions of HRS 2016 Sec. 2-3 (in expectation over
-the sampling, along one sampling path, for every training index at once), the non-convex t0 bound of
-a step-size schedule, and assess_run, which the tracker asks every epoch. Pure functions of numpy
-arrays, built on sgdstab.bounds (numpy, scipy and the standard library only; no torch). Notation
-and provenance as in sgdstab.bounds: the HRS 2016 statements are from memory.
+The growth recursions of HRS 2016 Sec. 2-3 (in expectation over the sampling, along one sampling
+path, for every training index at once) of the expansivity of one step (sgdstab.theory.expansion,
+re-exported here), the non-convex t0 bound of a step-size schedule, and assess_run, which the
+tracker asks every epoch. Pure functions of numpy arrays, built on sgdstab.bounds (numpy, scipy and
+the standard library only; no torch). Provenance as in sgdstab.bounds: HRS 2016 from memory.
 """
 
 from __future__ import annotations
@@ -33,8 +33,13 @@ from .bounds import (
     _step_sizes,
     _train_size,
     check_regime,
-    high_probability_gap,
 )
+from .confidence import high_probability_gap
+from .expansion import _expansion_for, expansion_convex, expansion_smooth, expansion_strongly_convex
+
+__all__ = ["expansion_convex", "expansion_strongly_convex", "expansion_smooth",
+           "expected_divergence", "pathwise_divergence", "all_index_pathwise",
+           "nonconvex_schedule_bound", "RunBounds", "assess_run"]
 
 _SAMPLING = "the swapped index is in step t's batch b_t/n times on average (uniform sampling)"
 
@@ -59,53 +64,6 @@ def _hit_counts(hits: Sequence[int] | np.ndarray, batch_sizes: np.ndarray) -> np
     if np.any(m < 0) or np.any(m > batch_sizes):
         raise ValueError("hit counts must lie between 0 and the step's batch size")
     return m
-
-
-# ---------------------------------------------------------------------------------------------
-# Expansivity (HRS 2016 Sec. 2-3, from memory)
-
-
-def expansion_convex(
-    step_sizes: Sequence[float] | np.ndarray, smoothness: float | None
-) -> np.ndarray:
-    """eta_t = 1.
-
-    Source: HRS 2016, expansivity of the gradient update (statement from memory).
-    Assumes f(.; z) convex and beta-smooth with alpha_t <= 2/beta; not checked here (check_regime).
-    """
-    _optional_positive("smoothness", smoothness)
-    return np.ones_like(_step_sizes(step_sizes))
-
-
-def expansion_strongly_convex(
-    step_sizes: Sequence[float] | np.ndarray, smoothness: float | None, strong_convexity: float
-) -> np.ndarray:
-    """eta_t = 1 - alpha_t * gamma.
-
-    Source: a rescaling argument (f = h + gamma/2 ||w||^2, h convex and (beta - gamma)-smooth);
-    HRS 2016 state the weaker factor 1 - alpha beta gamma / (beta + gamma) (statement from memory).
-    Assumes gamma-strongly convex, beta-smooth, alpha_t <= 2/(beta + gamma); not checked here.
-    """
-    _optional_positive("smoothness", smoothness)
-    gamma = _positive("strong_convexity", strong_convexity)
-    return 1.0 - _step_sizes(step_sizes) * gamma
-
-
-def expansion_smooth(step_sizes: Sequence[float] | np.ndarray, smoothness: float) -> np.ndarray:
-    """eta_t = 1 + alpha_t * beta.
-
-    Source: HRS 2016, expansivity of the gradient update (statement from memory).
-    Assumes only beta-smoothness (no convexity); holds for every step size.
-    """
-    return 1.0 + _step_sizes(step_sizes) * _positive("smoothness", smoothness)
-
-
-def _expansion_for(regime: str, a: np.ndarray, beta: float, gamma: float) -> np.ndarray:
-    if regime == "convex":
-        return expansion_convex(a, beta)
-    if regime == "strongly_convex":
-        return expansion_strongly_convex(a, beta, gamma)
-    return expansion_smooth(a, beta)
 
 
 # ---------------------------------------------------------------------------------------------

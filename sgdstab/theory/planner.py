@@ -1,9 +1,11 @@
 """Planned SGD runs: step-size schedules, the bound after T planned steps, and its inversions.
 
-planned_bounds evaluates the bounds of sgdstab.theory.bounds and sgdstab.theory.divergence on a
-schedule fixed in advance; max_steps, max_step_size and min_train_size invert them (closed form
-where one exists, integer bisection or scipy root finding otherwise). numpy, scipy and the
-standard library only; no torch. Sources and assumptions travel with each Bound and PlanAnswer.
+planned_bounds (sgdstab.theory.planned, re-exported here) evaluates the bounds of
+sgdstab.theory.bounds and sgdstab.theory.divergence on a schedule fixed in advance
+(sgdstab.theory.schedules, re-exported here); max_steps, max_step_size and min_train_size invert
+them (closed form where one exists, integer bisection or scipy root finding otherwise). numpy,
+scipy and the standard library only; no torch. Sources and assumptions travel with each Bound and
+PlanAnswer.
 """
 
 from __future__ import annotations
@@ -13,271 +15,23 @@ import functools
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import cast
 
-import numpy as np
-from scipy import optimize, special
+from scipy import optimize
 
 from .bounds import (
-    _PLAIN_SGD,
-    HRS,
     Bound,
-    _batch_sizes,
     _convex_value,
-    _delta,
-    _fails,
-    _first_excess,
-    _holds,
     _non_negative,
-    _optional_positive,
     _positive,
     _regime,
-    _regime_assumptions,
-    _step_sizes,
     _steps,
-    _strongly_convex_value,
-    _train_size,
-    check_regime,
-    high_probability_gap,
 )
-from .divergence import _SAMPLING, _trajectory, nonconvex_schedule_bound
+from .confidence import high_probability_gap
+from .planned import TARGET_BOUNDS, planned_bound, planned_bounds
+from .schedules import SCHEDULE_KINDS, Schedule, _as_schedule
 
-TARGET_BOUNDS = ("stability", "high_probability")
-SCHEDULE_KINDS = ("constant", "step-decay", "cosine", "c-over-t")
-
-
-@dataclass(frozen=True)
-class Schedule:
-    """Step sizes alpha_t for steps t = 1, 2, ...; every kind is non-increasing, largest at t = 1.
-
-    constant: base; step-decay: base * decay_factor ** ((t - 1) // decay_every);
-    cosine: base * (1 + cos(pi (t - 1) / total_steps)) / 2 for t <= total_steps; c-over-t: base / t.
-    """
-
-    kind: str = "constant"
-    base_step_size: float = 0.1
-    decay_factor: float = 0.1
-    decay_every: int = 1
-    total_steps: int | None = None
-
-    def __post_init__(self) -> None:
-        if self.kind not in SCHEDULE_KINDS:
-            raise ValueError(f"schedule kind must be one of {SCHEDULE_KINDS}, got {self.kind!r}")
-        _positive("base_step_size", self.base_step_size)
-        if not 0 < float(self.decay_factor) <= 1:
-            raise ValueError(f"decay_factor must lie in (0, 1], got {self.decay_factor!r}")
-        if _steps(self.decay_every) < 1:
-            raise ValueError("decay_every must be >= 1 step")
-        if self.kind == "cosine" and (self.total_steps is None or _steps(self.total_steps) < 1):
-            raise ValueError("a cosine schedule needs total_steps >= 1")
-
-    @property
-    def peak(self) -> float:
-        return float(self.base_step_size)
-
-    @property
-    def horizon(self) -> int | None:
-        """Last step the schedule defines (None: unlimited)."""
-        if self.kind != "cosine":
-            return None
-        assert self.total_steps is not None  # __post_init__ requires it for cosine
-        return int(self.total_steps)
-
-    def with_peak(self, peak: float) -> Schedule:
-        return dataclasses.replace(self, base_step_size=float(peak))
-
-    def step_sizes(self, steps: int) -> np.ndarray:
-        steps = _steps(steps)
-        if self.horizon is not None and steps > self.horizon:
-            raise ValueError(
-                f"the cosine schedule stops at {self.horizon} steps, asked for {steps}"
-            )
-        t = np.arange(1, steps + 1)
-        base = self.peak
-        if self.kind == "constant":
-            return np.full(steps, base)
-        if self.kind == "step-decay":
-            return base * float(self.decay_factor) ** ((t - 1) // int(self.decay_every))
-        if self.kind == "cosine":
-            assert self.total_steps is not None  # __post_init__ requires it for cosine
-            return base * (1 + np.cos(np.pi * (t - 1) / int(self.total_steps))) / 2
-        return base / t
-
-    def total_step_size(self, steps: int) -> float:
-        """sum_{t <= steps} alpha_t (closed form except for cosine)."""
-        steps, base = _steps(steps), self.peak
-        if self.kind == "constant":
-            return steps * base
-        if self.kind == "c-over-t":  # base * H_T, H_T = digamma(T + 1) + Euler's gamma
-            return base * float(special.digamma(steps + 1) + np.euler_gamma) if steps else 0.0
-        if self.kind == "step-decay" and self.decay_factor < 1:
-            blocks, rest = divmod(steps, int(self.decay_every))
-            log_f = math.log(self.decay_factor)
-            full = -math.expm1(blocks * log_f) / -math.expm1(log_f)  # sum_{k<blocks} f^k
-            return base * (int(self.decay_every) * full + rest * math.exp(blocks * log_f))
-        if self.kind == "step-decay":
-            return steps * base
-        return float(self.step_sizes(steps).sum())
-
-    def describe(self) -> str:
-        if self.kind == "constant":
-            return f"constant step size {self.peak:.6g}"
-        if self.kind == "c-over-t":
-            return f"step size c/t with c = {self.peak:.6g}"
-        if self.kind == "cosine":
-            return f"cosine from {self.peak:.6g} over {self.total_steps} steps"
-        factor, every = f"{self.decay_factor:.6g}", self.decay_every
-        return f"step size {self.peak:.6g} times {factor} every {every} steps"
-
-
-@dataclass(frozen=True, eq=False)
-class _Recorded:
-    """A given array of per-step sizes used as a schedule (a private copy)."""
-
-    values: np.ndarray
-    kind = "recorded"
-
-    @property
-    def peak(self) -> float:
-        return float(self.values.max())
-
-    @property
-    def horizon(self) -> int:
-        return int(self.values.size)
-
-    def with_peak(self, peak: float) -> _Recorded:
-        return _Recorded(self.values * (float(peak) / self.peak))
-
-    def step_sizes(self, steps: int) -> np.ndarray:
-        steps = _steps(steps)
-        if steps > self.horizon:
-            raise ValueError(f"the given schedule has {self.horizon} steps, asked for {steps}")
-        return self.values[:steps]
-
-    def total_step_size(self, steps: int) -> float:
-        return float(self.step_sizes(steps).sum())
-
-    def describe(self) -> str:
-        return f"{self.horizon} given step sizes (largest {self.peak:.6g})"
-
-
-def _as_schedule(
-    schedule: Schedule | _Recorded | float | Sequence[float] | np.ndarray,
-) -> Schedule | _Recorded:
-    if isinstance(schedule, (Schedule, _Recorded)):
-        return schedule
-    if np.ndim(schedule) == 0:  # a number: _positive converts it with float()
-        return Schedule("constant", _positive("step size", cast(float, schedule)))
-    values = _step_sizes(cast("Sequence[float] | np.ndarray", schedule)).copy()
-    if values.size == 0 or values.max() <= 0:
-        raise ValueError("a given schedule needs at least one step size > 0")
-    values.flags.writeable = False
-    return _Recorded(values)
-
-
-def _mean_gap_note() -> str:
-    return (
-        "eps_stab (in expectation over the sampling) used as beta_n: the statement holds for the "
-        "gap averaged over the sampling, E_A[R - R_S]"
-    )
-
-
-def planned_bounds(
-    horizons: Sequence[int],
-    *,
-    regime: str,
-    n: float,
-    lipschitz: float,
-    schedule: Schedule | float | Sequence[float],
-    smoothness: float | None = None,
-    strong_convexity: float = 0.0,
-    batch_size: int = 1,
-    loss_bound: float | None = None,
-    delta: float = 0.05,
-    bound: str = "stability",
-) -> tuple[Bound, ...]:
-    """The bound after T planned steps, for each T in horizons (constant batch size).
-
-    convex: (2 L^2 / n) sum_{t<=T} alpha_t; strongly convex: L * expected_divergence with
-    eta_t = 1 - alpha_t gamma (for a constant step size the finite-T sum of strongly_convex_bound);
-    nonconvex: nonconvex_schedule_bound. bound='high_probability' passes that eps_stab through
-    high_probability_gap. Sources and assumptions: those functions' (HRS 2016 from memory;
-    McDiarmid).
-    """
-    regime, n = _regime(regime), _train_size(n)
-    lipschitz = _positive("lipschitz", lipschitz)
-    beta = _optional_positive("smoothness", smoothness)
-    gamma = _non_negative("strong_convexity", strong_convexity)
-    batch = int(_batch_sizes(batch_size, 1)[0])
-    loss_bound = _optional_positive("loss_bound", loss_bound)
-    if bound not in TARGET_BOUNDS:
-        raise ValueError(f"bound must be one of {TARGET_BOUNDS}, got {bound!r}")
-    if bound == "high_probability":
-        delta = _delta(delta)
-    horizons = [_steps(h) for h in horizons]
-    sched = _as_schedule(schedule)
-    last = max(horizons, default=0)
-    if sched.horizon is not None and last > sched.horizon:
-        raise ValueError(f"{sched.describe()} defines {sched.horizon} steps, asked for {last}")
-
-    # Every Schedule kind is largest at step 1, so its condition is checked there.
-    probe = (
-        sched.step_sizes(last)
-        if isinstance(sched, _Recorded)
-        else np.full(min(last, 1), sched.peak)
-    )
-    assumptions = _regime_assumptions(regime, lipschitz, beta, gamma) + (_PLAIN_SGD,)
-    if regime == "nonconvex" or beta is not None:
-        reason = check_regime(regime, probe, beta, gamma)
-    elif regime == "strongly_convex" and gamma == 0:
-        reason = "strong convexity (gamma) must be declared > 0 in this regime"
-    else:
-        assumptions += ("step-size condition not checked: smoothness not declared",)
-        reason = "" if regime == "convex" else _first_excess(probe, 1 / gamma, "1/gamma")
-    if regime == "convex":
-        source = f"{HRS}, Thm 3.8 (convex)"
-    elif regime == "strongly_convex":
-        source = f"{HRS}, growth recursion (Sec. 3), eta = 1 - alpha*gamma"
-    else:
-        source = f"{HRS}, Lemma 3.11 (t0) with the expected growth recursion"
-    if not reason and regime == "nonconvex" and loss_bound is None:
-        reason = "loss bound (M) not declared: the t0 argument needs sup f <= M"
-    if reason:
-        return tuple(_fails(reason, source, assumptions) for _ in horizons)
-
-    if regime == "convex":
-        stability = [
-            _holds(_convex_value(sched.total_step_size(t), n, lipschitz), source, assumptions)
-            for t in horizons
-        ]
-    elif regime == "strongly_convex" and sched.kind == "constant":
-        stability = [
-            _holds(_strongly_convex_value(sched.peak, t, n, lipschitz, gamma), source, assumptions)
-            for t in horizons
-        ]
-    elif regime == "strongly_convex":
-        a = sched.step_sizes(last)
-        curve = lipschitz * _trajectory(1.0 - a * gamma, 2.0 * a * lipschitz / n)
-        stability = [_holds(curve[t], source, assumptions + (_SAMPLING,)) for t in horizons]
-    else:
-        assert beta is not None  # check_regime gave a reason above when smoothness is not declared
-        stability = [
-            nonconvex_schedule_bound(sched.step_sizes(t), batch, n, lipschitz, beta, loss_bound)
-            for t in horizons
-        ]
-    if bound == "stability":
-        return tuple(stability)
-    out = []
-    for eps in stability:
-        high = high_probability_gap(eps.value, n, loss_bound, delta)
-        extra = (eps.source, *eps.assumptions, _mean_gap_note())
-        out.append(dataclasses.replace(high, assumptions=high.assumptions + extra, t0=eps.t0))
-    return tuple(out)
-
-
-def planned_bound(steps: int, **problem) -> Bound:
-    """planned_bounds for one horizon: the bound after `steps` planned steps."""
-    return planned_bounds([steps], **problem)[0]
+__all__ = ["TARGET_BOUNDS", "SCHEDULE_KINDS", "Schedule", "planned_bounds", "planned_bound",
+           "PlanAnswer", "max_steps", "max_step_size", "min_train_size"]
 
 
 @dataclass(frozen=True)

@@ -21,7 +21,6 @@ hang. (On NCCL the process group's own timeout applies.)
 
 from __future__ import annotations
 
-import hashlib
 import math
 import warnings
 from collections.abc import Iterator
@@ -33,12 +32,12 @@ import numpy as np
 import torch
 import torch.distributed as dist
 from torch.nn.parallel import DistributedDataParallel
-from torch.utils._pytree import tree_flatten
 
 from ..outputs.reading import EpochReading
 from ..shadows.lockstep import LockstepError, NeighbourSpec, Shadow, preserved_rng
 from . import measure
 from .probe import model_losses, summarise_probe
+from .remote import HeldHere, RemoteShadow, digest, model_digest
 from .tracker import LockstepWarning, ShadowFaultWarning, StabilityTracker
 
 __all__ = ["SpreadStabilityTracker", "RemoteShadow", "DEFAULT_SHADOW_TIMEOUT"]
@@ -46,68 +45,6 @@ __all__ = ["SpreadStabilityTracker", "RemoteShadow", "DEFAULT_SHADOW_TIMEOUT"]
 # Seconds a rank waits at an epoch end for the others (torch's default process-group timeout for
 # gloo is also 30 minutes). Ranks holding one shadow more than others arrive a little later.
 DEFAULT_SHADOW_TIMEOUT = 1800.0
-
-
-class RemoteShadow(Shadow):
-    """The stand-in for a shadow another rank steps: its spec, row and label, no model.
-
-    ``forked``, ``forked_at`` and ``fault`` are brought up to date at every epoch end.
-    """
-
-    def __init__(self, spec: NeighbourSpec, held_by: int, label: str) -> None:
-        super().__init__(spec, None, None, None, label)   # type: ignore[arg-type]
-        self.held_by = held_by
-
-    @property
-    def active(self) -> bool:   # never stepped, checked or evaluated here
-        return False
-
-
-def _digest(*values: Any) -> str:
-    """A short hash of nested values: tensors by dtype, shape and bytes, anything else by repr."""
-    h = hashlib.blake2b(digest_size=12)
-    for leaf in tree_flatten(list(values))[0]:
-        if isinstance(leaf, torch.Tensor):
-            t = leaf.detach().cpu().contiguous()
-            h.update(f"{t.dtype}{tuple(t.shape)}".encode())
-            h.update(t.reshape(-1).view(torch.uint8).numpy().tobytes() if t.numel() else b"")
-        elif isinstance(leaf, np.ndarray):
-            h.update(np.ascontiguousarray(leaf).tobytes())
-        else:
-            h.update(repr(leaf).encode())
-    return h.hexdigest()
-
-
-def _model_digest(model: torch.nn.Module) -> str:
-    return _digest([(name, t) for name, t in model.state_dict().items()])
-
-
-class _HeldHere:
-    """The tracker's engine as the checkpoint code sees it: remote shadows save and load only
-    their rank, fork step and fault; the local ones go to the real engine."""
-
-    def __init__(self, engine: Any) -> None:
-        self._engine = engine
-
-    def __getattr__(self, name: str) -> Any:
-        return getattr(self._engine, name)
-
-    def shadow_state(self, shadow: Shadow) -> dict[str, Any]:
-        if isinstance(shadow, RemoteShadow):
-            return {"held_by": shadow.held_by, "forked": shadow.forked,
-                    "forked_at": shadow.forked_at, "fault": shadow.fault}
-        return self._engine.shadow_state(shadow)
-
-    def load_shadow_state(self, shadow: Shadow, state: Any) -> None:
-        if isinstance(shadow, RemoteShadow) != ("held_by" in state):
-            raise LockstepError(f"{shadow.label}: the checkpoint was saved by a rank that "
-                                f"{'held' if 'held_by' not in state else 'did not hold'} it; "
-                                "load each rank's own checkpoint on the same number of ranks")
-        if isinstance(shadow, RemoteShadow):
-            shadow.forked, shadow.forked_at = bool(state["forked"]), state["forked_at"]
-            shadow.fault = state["fault"]
-            return
-        self._engine.load_shadow_state(shadow, state)
 
 
 class SpreadStabilityTracker(StabilityTracker):
@@ -203,17 +140,17 @@ class SpreadStabilityTracker(StabilityTracker):
         constants = self.declared_constants.to_dict() if self.declared_constants else \
             ("estimate" if self.estimate_constants else None)
         return {
-            "seed": _digest(self.seed),
-            "shadows (K and the swapped examples)": _digest(
+            "seed": digest(self.seed),
+            "shadows (K and the swapped examples)": digest(
                 [(s.spec.index, s.spec.origin, s.spec.source_index, s.spec.replacement)
                  for s in self.shadows]),
-            "options": _digest(self.delta, self.lazy_fork, self.probe_size, requested,
+            "options": digest(self.delta, self.lazy_fork, self.probe_size, requested,
                                self.engine.name, constants, self.loss_bound, self.estimate_every,
                                sorted(self.estimate_options.items()), options.get("audit", True),
                                self.probe_set is not None and len(self.probe_set)),  # type: ignore[arg-type]  # noqa: E501
-            "optimizer": _digest(type(self.optimizer).__name__, groups),
-            "model (parameters and buffers)": _model_digest(self.model),
-            "data (n and a few rows)": _digest(self.dataset_size, rows, sample, extra),
+            "optimizer": digest(type(self.optimizer).__name__, groups),
+            "model (parameters and buffers)": model_digest(self.model),
+            "data (n and a few rows)": digest(self.dataset_size, rows, sample, extra),
             "torch version": torch.__version__,
         }
 
@@ -272,7 +209,7 @@ class SpreadStabilityTracker(StabilityTracker):
             self.engine, self.model, [self.shadows[k] for k in held], self.audit_shadow)
         mine = {"shadows": {k: (value, self.shadows[k].forked, self.shadows[k].forked_at,
                                 self.shadows[k].fault) for k, value in zip(held, values)},
-                "layer": layer, "audit": audit, "main": _model_digest(self.model)}
+                "layer": layer, "audit": audit, "main": model_digest(self.model)}
         everyone = self._exchange(mine, f"epoch {self.epoch} divergence")
         mains = [theirs["main"] for theirs in everyone]
         if len(set(mains)) > 1:
@@ -352,7 +289,7 @@ class SpreadStabilityTracker(StabilityTracker):
     def _checkpoint_view(self) -> Iterator[None]:
         engine = self.engine
         # a stand-in with the same checkpoint methods as the engine it wraps
-        self.engine = _HeldHere(engine)  # type: ignore[assignment]
+        self.engine = HeldHere(engine)  # type: ignore[assignment]
         try:
             yield
         finally:

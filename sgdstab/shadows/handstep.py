@@ -1,0 +1,297 @@
+"""The stacked engine's step: batched products forward, the backward written out by hand, one
+optimizer step over the stacked tensors, a chunk of slots at a time within ``STEP_MEMORY_BUDGET``.
+
+Used by ``shadows.stacked.StackedEngine`` (which re-exports ``STEP_MEMORY_BUDGET``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping, Sequence
+from typing import Any
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from .chain import _Dropout, _known_loss, _Linear, _plan
+from .lockstep import (
+    LockstepError,
+    LossOf,
+    StepGroup,
+    substitute_rows,
+)
+from .stacking import SlotState, _CannotBatch, _Stack
+from .stackstep import Views, _StackStepper
+
+__all__ = ["STEP_MEMORY_BUDGET"]
+
+# Bytes of gradients and activations one stacked step may hold at once (estimated from the
+# shapes): above it the slots are stepped a chunk at a time, at least one slot per chunk. 16 MiB
+# keeps a 64-256-256-10 MLP at batch 32-128 (0.5-1.0 MB a slot, 10 slots) in one chunk, where
+# batching slots pays (at batch 256, 1.7 MB a slot, it makes chunks of 9); a 1024-wide layer's
+# gradient alone is 4 MiB a slot, and one product per slot is already a large one there.
+STEP_MEMORY_BUDGET = 16 * 2**20
+
+
+class _HandStepper(_StackStepper):
+    """Per-slot gradients of a Linear/activation chain by batched products and a hand-written
+    backward; hooks, verification and the update as ``_StackStepper``."""
+
+    def __init__(self, main_model: nn.Module, main_optimizer: torch.optim.Optimizer,
+                 loss_of: LossOf, skeleton: nn.Module, stepped: Sequence[str],
+                 loss_fn: Callable[..., torch.Tensor]) -> None:
+        super().__init__(main_model, main_optimizer, loss_of, skeleton, stepped)
+        plan = _plan(main_model)
+        assert not isinstance(plan, str), plan
+        self.layers, self.flatten_first = plan
+        self.loss_fn = loss_fn
+        self.loss_kind = _known_loss(loss_fn)
+
+    def gradients(self, stack: _Stack, group: StepGroup, constants: Mapping[str, torch.Tensor],
+                  views: Callable[[], list[nn.Module]]
+                  ) -> tuple[dict[str, torch.Tensor], torch.Tensor]:
+        finite = torch.ones(len(stack.members), dtype=torch.bool)
+        total: dict[str, torch.Tensor] | None = None
+        for number, (batch, indices, rng_state) in enumerate(
+                zip(group.batches, group.indices, group.rng_states)):
+            if not isinstance(batch, (list, tuple)) or len(batch) != 2 or \
+                    not all(isinstance(t, torch.Tensor) for t in batch):
+                raise _CannotBatch("the batch is not an (inputs, targets) pair of tensors")
+            hits = self._hits(stack, batch, indices)
+            torch.set_rng_state(rng_state)   # dropout masks as the main run drew them
+            gradients, losses = self._one_batch(stack.parameters, batch, hits)
+            if not self.verified and number == 0:
+                self._verify(views, batch, rng_state, gradients)
+            finite &= torch.isfinite(losses)
+            if total is None:
+                total = gradients
+            else:
+                for name in total:
+                    total[name] += gradients[name]
+        assert total is not None
+        return total, finite
+
+    # -- a few slots at a time ----------------------------------------------------------------
+    def chunk_size(self, stack: _Stack, group: StepGroup) -> int:
+        """How many slots one chunk steps: as many as keep the chunk's gradients and saved
+        activations (estimated from the shapes) within ``STEP_MEMORY_BUDGET``, at least one."""
+        first = next(iter(stack.parameters.values()))
+        size = first.element_size()
+        gradients = sum(t[0].numel() for t in stack.parameters.values()) * size
+        if len(group.batches) > 1:
+            gradients *= 2   # the running sum over the batches and one batch's gradients
+        widths = [stack.parameters[layer.weight].shape[1] for layer in self.layers
+                  if isinstance(layer, _Linear)]
+        # per row: each Linear output (or the activation overwriting it), each Dropout output,
+        # two gradients of the widest layer in the backward, the slot's own input rows
+        kept = sum(widths) + 2 * max(widths) + \
+            sum(1 for layer in self.layers if isinstance(layer, _Dropout)) * max(widths)
+        rows = max((_rows(batch) for batch in group.batches), default=0)
+        fan_in = stack.parameters[self.layers[0].weight].shape[2] \
+            if isinstance(self.layers[0], _Linear) else 0
+        per_slot = gradients + rows * (kept + fan_in) * size
+        return max(1, STEP_MEMORY_BUDGET // max(per_slot, 1))
+
+    def step_in_chunks(self, stack: _Stack, group: StepGroup, views: Views
+                       ) -> tuple[torch.Tensor, dict[int, SlotState]] | None:
+        """Forward, backward and update of a few slots at a time (``chunk_size``), so the step
+        holds one chunk's gradients and activations instead of every slot's. Every slot gets
+        the values of the whole-stack step: each slot's products, loss and update read only its
+        own tensors, the dropout masks are drawn once and shared, and the loss takes the same
+        path in every chunk. None (step the whole stack) when one chunk holds every slot, for a
+        loss evaluated slot by slot, or for targets that would take another loss path."""
+        slots = len(stack.members)
+        size = self.chunk_size(stack, group)
+        if size >= slots or not self.loss_kind:
+            return None
+        prepared = []
+        for batch, indices, rng_state in zip(group.batches, group.indices, group.rng_states):
+            if not isinstance(batch, (list, tuple)) or len(batch) != 2 or \
+                    not all(isinstance(t, torch.Tensor) for t in batch):
+                return None   # the whole-stack path says why it cannot step it
+            hits = self._hits(stack, batch, indices)
+            targets = [batch[1], *(other[1] for _, other in hits.values())]
+            if self.loss_kind == "cross_entropy" and not all(
+                    t.dim() == 1 and not t.is_floating_point() and bool((t >= 0).all())
+                    for t in targets):
+                return None
+            prepared.append((batch, hits, rng_state))
+        finite = torch.ones(slots, dtype=torch.bool)
+        held: dict[int, SlotState] = {}
+        noises: dict[tuple[int, int], torch.Tensor | None] = {}
+        pending: dict[tuple[str, str], Any] = {}
+        for start in range(0, slots, size):
+            stop = min(start + size, slots)
+            try:
+                parameters = {name: t[start:stop] for name, t in stack.parameters.items()}
+                total: dict[str, torch.Tensor] | None = None
+                for number, (batch, hits, rng_state) in enumerate(prepared):
+                    mine = {j - start: hit for j, hit in hits.items() if start <= j < stop}
+                    torch.set_rng_state(rng_state)
+                    gradients, losses = self._one_batch(parameters, batch, mine,
+                                                        (noises, number))
+                    if not self.verified and number == 0 and start == 0:
+                        self._verify(views, batch, rng_state, gradients)
+                    finite[start:stop] &= torch.isfinite(losses)
+                    if total is None:
+                        total = gradients
+                    else:
+                        for name in total:
+                            total[name] += gradients[name]
+                    del gradients
+                assert total is not None
+                held.update(self.update_slots(stack, total, finite, start, stop, pending))
+                del total
+            except LockstepError:
+                raise
+            except Exception as error:
+                if start == 0:
+                    raise   # nothing is updated yet: the engine falls back as for a whole step
+                raise LockstepError(
+                    f"the stacked step failed at slot {start} after slots 0-{start - 1} were "
+                    f"updated ({type(error).__name__}: {error})") from error
+        self.finish_slots(stack, pending)
+        return finite, held
+
+    def _hits(self, stack: _Stack, batch: Any, indices: np.ndarray
+              ) -> dict[int, tuple[np.ndarray, Any]]:
+        """The slots whose swapped example is in the batch: its positions and their batch."""
+        hits = {}
+        for j, member in enumerate(stack.members):
+            positions = np.flatnonzero(indices == member.spec.index)
+            if positions.size:
+                hits[j] = (positions, substitute_rows(batch, member.row, positions.tolist(),
+                                                      len(indices)))
+        return hits
+
+    # -- one batch, all slots -----------------------------------------------------------------
+    def _one_batch(self, parameters: Mapping[str, torch.Tensor], batch: Any,
+                   hits: Mapping[int, tuple[np.ndarray, Any]],
+                   shared: tuple[dict[tuple[int, int], torch.Tensor | None], int] | None = None
+                   ) -> tuple[dict[str, torch.Tensor], torch.Tensor]:
+        """Gradients and losses of the slots ``parameters`` hold. ``shared`` is a cache of the
+        dropout masks by (batch number, layer) and this batch's number, when the slots are
+        stepped a chunk at a time: the first chunk draws the masks, the others reuse them."""
+        inputs, targets = batch
+        rows = inputs.shape[0]
+        first = self.layers[0]
+        if not isinstance(first, _Linear):
+            raise _CannotBatch("the model starts with an activation")  # pragma: no cover
+        weight = parameters[first.weight]
+        slots, width, fan_in = weight.shape
+        x = inputs.reshape(rows, -1) if self.flatten_first else inputs
+        if x.dim() != 2 or x.shape[1] != fan_in or x.dtype != weight.dtype:
+            raise _CannotBatch(f"inputs of shape {tuple(inputs.shape)} and dtype {inputs.dtype} "
+                               "do not meet the first Linear layer as a [batch, features] matrix")
+        if hits:   # the slots whose swap is in the batch get their own input rows
+            x = x.unsqueeze(0).repeat(slots, 1, 1)
+            for j, (positions, other) in hits.items():
+                own = other[0].reshape(rows, -1) if self.flatten_first else other[0]
+                x[j, positions] = own[positions]
+        else:
+            x = x.unsqueeze(0).expand(slots, rows, fan_in)
+        with torch.no_grad():
+            # (input, output or noise) per layer; a Linear layer's output is not kept (its
+            # backward reads its input only), so an activation whose derivative reads its output
+            # alone (relu, tanh, sigmoid) overwrites that fresh output in place: one tensor per
+            # hidden layer is held for the backward instead of two
+            saved: list[tuple[torch.Tensor, Any] | None] = []
+            a = x
+            fresh = False   # whether ``a`` is a Linear output nothing else reads
+            for position, layer in enumerate(self.layers):
+                if isinstance(layer, _Linear):
+                    out = torch.bmm(a, parameters[layer.weight].transpose(1, 2))
+                    if layer.bias is not None:
+                        out += parameters[layer.bias].unsqueeze(1)
+                    saved.append((a, None))
+                    a, fresh = out, True
+                    continue
+                if isinstance(layer, _Dropout):
+                    if shared is None:
+                        noise = layer.noise(a)
+                    else:
+                        masks, key = shared[0], (shared[1], position)
+                        if key not in masks:
+                            masks[key] = layer.noise(a)
+                        noise = masks[key]
+                    out = a if noise is None else a * noise
+                    saved.append((a, noise))
+                    a, fresh = out, False
+                    continue
+                out = layer.forward_in_place(a) if fresh else layer.forward(a)
+                saved.append((a, out))
+                a, fresh = out, False
+        del x
+        with torch.enable_grad():
+            outputs = a.detach().requires_grad_(True)
+            losses = self._losses(outputs, targets, hits, rows)
+            (grad,) = torch.autograd.grad(losses.sum(), outputs)
+        losses = losses.detach()
+        gradients: dict[str, torch.Tensor] = {}
+        with torch.no_grad():
+            for number in range(len(self.layers) - 1, -1, -1):
+                entry, saved[number] = saved[number], None   # freed once this layer is done
+                assert entry is not None
+                layer, (a_in, a_out) = self.layers[number], entry
+                del entry
+                if isinstance(layer, _Linear):
+                    gradients[layer.weight] = torch.bmm(grad.transpose(1, 2), a_in)
+                    if layer.bias is not None:
+                        gradients[layer.bias] = grad.sum(1)
+                    if number:
+                        grad = torch.bmm(grad, parameters[layer.weight])
+                elif isinstance(layer, _Dropout):
+                    if a_out is not None:
+                        grad = grad * a_out
+                else:
+                    grad = layer.backward(grad, a_in, a_out)
+                del a_in, a_out
+        return gradients, losses
+
+    def _losses(self, outputs: torch.Tensor, targets: torch.Tensor,
+                hits: Mapping[int, tuple[np.ndarray, Any]], rows: int) -> torch.Tensor:
+        """Each slot's loss on its own targets (a vector over slots, differentiable)."""
+        slots = outputs.shape[0]
+        if hits:
+            stacked = targets.unsqueeze(0).repeat(slots, *[1] * targets.dim())
+            for j, (_, other) in hits.items():
+                stacked[j] = other[1]
+        else:
+            stacked = targets.unsqueeze(0).expand(slots, *targets.shape)
+        kind = self.loss_kind
+        if kind == "cross_entropy" and targets.dim() == 1 and not targets.is_floating_point() \
+                and bool((stacked >= 0).all()):
+            per = F.cross_entropy(outputs.reshape(slots * rows, -1), stacked.reshape(-1),
+                                  reduction="none")
+            return per.view(slots, rows).mean(1)
+        if kind == "mse" and targets.shape == outputs.shape[1:]:
+            per = F.mse_loss(outputs, stacked, reduction="none")
+            return per.reshape(slots, -1).mean(1)
+        values = []
+        for j in range(slots):
+            value = self.loss_fn(outputs[j], stacked[j])
+            if not isinstance(value, torch.Tensor) or value.numel() != 1:
+                raise _CannotBatch("the loss is not a scalar tensor")
+            values.append(value.reshape(()))
+        return torch.stack(values)
+
+    def _tune(self, group: dict[str, Any]) -> None:
+        """The optimizer's foreach kernels over the stack where the user left the choice to
+        torch."""
+        _fastest_kernel(group)
+
+
+def _rows(batch: Any) -> int:
+    inputs = batch[0] if isinstance(batch, (list, tuple)) and batch else None
+    return int(inputs.shape[0]) if isinstance(inputs, torch.Tensor) and inputs.dim() else 0
+
+
+def _fastest_kernel(group: dict[str, Any]) -> None:
+    """Let the stack's optimizer use its foreach kernels where the user's settings leave the
+    choice to torch. Not the fused kernels, though faster (0.29 against 0.36-0.44 ms per
+    SGD-with-momentum step of 9 stacked 64-256-256-10 MLPs, one thread): they did not round every
+    slot alike (null swaps drifted 9e-10 from the reference), where foreach did."""
+    if "foreach" in group and group["foreach"] is None and not group.get("fused") and \
+            not group.get("differentiable", False):
+        group["foreach"] = True
