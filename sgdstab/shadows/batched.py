@@ -14,40 +14,26 @@ warning, to per-shadow stepping; the runs' states move over unchanged.
 from __future__ import annotations
 
 import copy
-import warnings
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import torch
 from torch import nn
 
-from .lockstep import (
-    LockstepError,
-    LossOf,
-    NeighbourSpec,
-    PerShadowEngine,
-    Shadow,
-    StepGroup,
+from .fallback import (
+    EngineFallbackWarning,
+    adopt,
+    fall_back,
+    fallback_fork,
+    fallback_step,
+    load_into_module,
 )
-from .stacking import (
-    SlotState,
-    _CannotBatch,
-    _layout,
-    _load_into,
-    _module_over,
-    _move_slots,
-    _same,
-    _Stack,
-    _stack_states,
-    _state_from_module,
-)
+from .lockstep import LockstepError, LossOf, NeighbourSpec, PerShadowEngine, Shadow, StepGroup
+from .restack import restack, restack_in_place
+from .stacking import SlotState, _CannotBatch, _layout, _module_over, _Stack, _state_from_module
 from .stackstep import _StackStepper
 
 __all__ = ["BatchedEngine", "BatchedShadow", "EngineFallbackWarning", "SlotState"]
-
-
-class EngineFallbackWarning(UserWarning):
-    """The batched engine cannot follow this run exactly; shadows are stepped one by one."""
 
 
 class BatchedShadow(Shadow):
@@ -383,173 +369,19 @@ class BatchedEngine:
             return {name: named[name].detach() for name in self._constant_names}
         return self._constants
 
-    def _restack(self, members: list[BatchedShadow]) -> None:
-        """Stack ``members`` afresh (after forks, faults or removals). No per-run copies are
-        made on the way, and each of the old stack's tensors is let go as soon as its successor
-        is built, so the peak is the old stack plus one parameter's new tensors, not two whole
-        stacks."""
-        old = self._stack
-        if old is not None and self._restack_in_place(old, members):
-            return
-        states = [old.slice(old.slot[id(m)], copy=False) if old is not None and id(m) in old.slot
-                  else m.state if m.state is not None else self._state_of(m) for m in members]
-        borrowed = [s for m, s in zip(members, states) if old is not None and id(m) in old.slot]
-
-        pending: dict[str, dict[str, Any]] = {}   # old state entries whose tensor is let go
-
-        def release(name: str, key: str | None) -> None:
-            if old is None:
-                return
-            if key is None:
-                for state in borrowed:   # views into the old stack, made above for this only
-                    state.parameters.pop(name, None)
-                tensor = old.parameters.pop(name)
-                pending[name] = old.optimizer.state.pop(tensor, {})
-                for group in old.optimizer.param_groups:
-                    group["params"] = [p for p in group["params"] if p is not tensor]
-                return
-            for state in borrowed:
-                state.optimizer.get(name, {}).pop(key, None)
-            pending[name].pop(key, None)
-
-        if old is not None:
-            old.views = None   # modules over the old slots alias its tensors
-            old.chunks.clear()   # so do the optimizers over runs of its slots
-        # room for every run the engine holds (the reference and each shadow), so that later
-        # forks and removals move slots in place (``_restack_in_place``)
-        stack = _stack_states(members, states, self._stepped, self._shapes, self._group_names,
-                              self.main_optimizer, release, capacity=len(self.shadows) + 1)
-        for member in members:
-            member.state = None
-        del states
-        self._stack = stack
-
-    def _restack_in_place(self, old: _Stack, members: list[BatchedShadow]) -> bool:
-        """Restack within the old stack's tensors, which have room for ``members``: the kept
-        runs' slots move in place, a newly forked run's state is copied into its slot, so no
-        second stacked tensor is ever built (building one beside the old one was the peak of
-        epoch 1 while the shadows fork). False, with nothing changed, when the old stack's
-        tensors cannot take ``members`` (too few slots, state the buffers do not hold, or a new
-        run's optimizer state of another kind); ``_restack`` then builds new tensors."""
-        count = len(members)
-        sources = [old.slot.get(id(m)) for m in members]
-        entries = {name: old.optimizer.state.get(t, {}) for name, t in old.parameters.items()}
-        buffered: list[tuple[Any, torch.Tensor]] = []
-        for name, stacked in old.parameters.items():
-            buffer = old.buffers.get(name)
-            if buffer is None or buffer.shape[0] < count or \
-                    buffer.data_ptr() != stacked.data_ptr():
-                return False
-            buffered.append((name, buffer))
-            for key, value in entries[name].items():
-                if isinstance(value, torch.Tensor) and value.shape == stacked.shape:
-                    buffer = old.buffers.get((name, key))
-                    if buffer is None or buffer.data_ptr() != value.data_ptr():
-                        return False
-                    buffered.append(((name, key), buffer))
-        incoming = {}
-        for j, (member, source) in enumerate(zip(members, sources)):
-            if source is not None:
-                continue
-            state = member.state if member.state is not None else self._state_of(member)
-            for name, entry in entries.items():
-                own = state.optimizer.get(name, {})
-                if tuple(own) != tuple(entry) or not all(
-                        (name, key) in old.buffers if isinstance(value, torch.Tensor) and
-                        value.shape == old.parameters[name].shape else _same(own[key], value)
-                        for key, value in entry.items()):
-                    return False
-            incoming[j] = state
-        moves = {j: source for j, source in enumerate(sources)
-                 if source is not None and source != j}
-        old.views = None
-        old.chunks.clear()
-        for key, buffer in buffered:
-            _move_slots(buffer, moves)
-            for j, state in incoming.items():
-                value = state.parameters[key] if isinstance(key, str) else \
-                    state.optimizer[key[0]][key[1]]
-                buffer[j].copy_(value)
-        parameters = {name: old.buffers[name][:count] for name in old.parameters}
-        groups = []
-        for main_group, names in zip(self.main_optimizer.param_groups, self._group_names):
-            settings = {key: value for key, value in main_group.items() if key != "params"}
-            groups.append({**settings,
-                           "params": [parameters[n] for n in names if n in parameters]})
-        optimizer = type(self.main_optimizer)(groups)  # type: ignore[call-arg]
-        for name, entry in entries.items():
-            if entry:
-                optimizer.state[parameters[name]] = {
-                    key: old.buffers[(name, key)][:count] if (name, key) in old.buffers
-                    and isinstance(value, torch.Tensor) and
-                    value.shape == old.parameters[name].shape else value
-                    for key, value in entry.items()}
-        stack = _Stack(list(members), parameters, optimizer)
-        stack.buffers = old.buffers
-        old.parameters, old.buffers = {}, {}
-        old.optimizer.state.clear()
-        for member in members:
-            member.state = None
-        self._stack = stack
-        return True
+    _restack = restack
+    _restack_in_place = restack_in_place
 
     def _views(self) -> list[nn.Module]:
         assert self._stack is not None
         return self._stack.modules(self._skeleton, self._constants)
 
-    # -- falling back to per-shadow stepping ----------------------------------------------------
-    def _fall_back(self, reason: str) -> None:
-        """Move every run into its own module and optimizer and step them one by one from now."""
-        warnings.warn(f"batched shadows: stepping shadows one by one instead, because {reason}",
-                      EngineFallbackWarning, stacklevel=4)
-        inner = PerShadowEngine(self.main_model, self.main_optimizer, self.loss_of,
-                                self.before_step)
-        inner.gradient_sync = self.gradient_sync
-        # Before any batched step the reference equals the main run exactly: drop it.
-        keep_reference = self.reference.forked and self._stepper.updates > 0
-        members = [*self.shadows, *([self.reference] if keep_reference else [])]
-        states = {id(m): self._state_of(m) for m in members if m.forked and self._has_state(m)}
-        self._stack = None
-        for member in members:
-            self._adopt(inner, member)
-            if id(member) in states:
-                self._load_into_module(member, states[id(member)], self._constants)
-        inner.shadows = list(self.shadows)
-        if not keep_reference:
-            self.reference.forked = False
-        self._fallback = inner
-        self.fallback_reason = reason
-        self.name = "per_shadow"
-
-    def _adopt(self, inner: PerShadowEngine, member: Shadow) -> None:
-        made = inner.add_shadow(member.spec, member.row, member.label)
-        inner.shadows.remove(made)
-        member.model, member.optimizer = made.model, made.optimizer
-
-    def _load_into_module(self, member: Shadow, state: SlotState,
-                          constants: Mapping[str, torch.Tensor]) -> None:
-        _load_into(member.model, member.optimizer, state, constants, self._group_names)
-
-    def _fallback_fork(self, shadow: Shadow, step: int,
-                       buffers: Mapping[str, torch.Tensor] | None) -> None:
-        assert self._fallback is not None
-        if shadow.spec.origin == "self":
-            self._fork_twin(shadow, step, buffers)
-        if not self.reference.forked:
-            self._fallback.fork(shadow, step, buffers)
-            return
-        self._load_into_module(shadow, self._state_of(self.reference),
-                               self._constants_of(self.reference))
-        shadow.forked = True
-        shadow.forked_at = step
-
-    def _fallback_step(self, shadows: Sequence[Shadow], group: StepGroup, step: int
-                       ) -> list[Shadow]:
-        assert self._fallback is not None
-        self._fallback.gradient_sync = self.gradient_sync
-        runs = [*([self.reference] if self.reference.forked else []), *shadows]
-        faulted = self._fallback.step(runs, group, step)
-        return [s for s in faulted if s is not self.reference]
+    # -- falling back to per-shadow stepping (``fallback``) -----------------------------------
+    _fall_back = fall_back
+    _adopt = adopt
+    _load_into_module = load_into_module
+    _fallback_fork = fallback_fork
+    _fallback_step = fallback_step
 
 
 def _reason(error: BaseException) -> str:
