@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
+
 import pytest
 import torch
 import torch.nn.functional as F
@@ -67,3 +70,33 @@ def test_a_settings_object_of_the_wrong_kind_is_a_type_error():
         StabilityTracker(model, torch.optim.SGD(model.parameters(), lr=0.1),
                          loss_fn=F.cross_entropy, train_set=pebbles(),
                          probe_settings=ConstantSettings())
+
+
+def test_the_data_parallel_tracker_takes_the_grouped_options(tmp_path):
+    """A one-rank gloo group in a child process (so this process's default group is untouched):
+    DataParallelStabilityTracker passes the settings objects on like the flat keywords."""
+    script = tmp_path / "one_rank.py"
+    script.write_text(
+        "import socket, torch, torch.distributed as dist, torch.nn as nn\n"
+        "from torch.nn.parallel import DistributedDataParallel\n"
+        "from torch.utils.data import TensorDataset\n"
+        "from sgdstab import ConstantSettings, DataParallelStabilityTracker, ProbeSettings\n"
+        "with socket.socket() as s:\n"
+        "    s.bind(('127.0.0.1', 0)); port = s.getsockname()[1]\n"
+        "dist.init_process_group('gloo', init_method=f'tcp://127.0.0.1:{port}', rank=0,"
+        " world_size=1)\n"
+        "torch.manual_seed(0)\n"
+        "data = TensorDataset(torch.randn(40, 3), torch.randint(0, 2, (40,)))\n"
+        "model = DistributedDataParallel(nn.Linear(3, 2))\n"
+        "tracker = DataParallelStabilityTracker(\n"
+        "    model, torch.optim.SGD(model.parameters(), lr=0.1),\n"
+        "    loss_fn=nn.functional.cross_entropy, train_set=data, shadows=2,\n"
+        "    constant_settings=ConstantSettings('estimate', every=3, loss_bound=2.0),\n"
+        "    probe_settings=ProbeSettings(size=16))\n"
+        "print(tracker.estimate_every, tracker.loss_bound, tracker.probe_size,"
+        " tracker.estimate_constants)\n"
+        "tracker.close(); dist.destroy_process_group()\n")
+    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
+                          timeout=120)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert done.stdout.split() == ["3", "2.0", "16", "True"]
