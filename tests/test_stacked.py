@@ -25,6 +25,8 @@ from sgdstab.shadows.engines import EngineFallbackWarning, make_engine
 from sgdstab.shadows.lockstep import PerShadowEngine
 from sgdstab.shadows.stacked import AUTO_OVERRIDE_VARIABLE, StackedEngine, stacked_refusal
 
+from ._optimizers import _optimizer
+
 STACKED_RELATIVE = 1e-5
 
 
@@ -47,17 +49,6 @@ def _chain(activation: type[nn.Module], features: int = 12, classes: int = 3,
     layers += [nn.Linear(features, 16), activation(), nn.Linear(16, 16), activation(),
                *([nn.Dropout(dropout)] if dropout else []), nn.Linear(16, classes)]
     return nn.Sequential(*layers)
-
-
-def _optimizer(kind: str, model: nn.Module) -> torch.optim.Optimizer:
-    if kind == "nesterov":
-        return torch.optim.SGD(model.parameters(), lr=0.05, momentum=0.9, nesterov=True,
-                               weight_decay=1e-3)
-    if kind == "dampening":
-        return torch.optim.SGD(model.parameters(), lr=0.05, momentum=0.8, dampening=0.3)
-    if kind == "adam":
-        return torch.optim.Adam(model.parameters(), lr=0.01, weight_decay=1e-4)
-    return torch.optim.SGD(model.parameters(), lr=0.1)
 
 
 def _run(engine: str, *, activation=nn.ReLU, optimizer="nesterov", loss=F.cross_entropy,

@@ -21,6 +21,8 @@ from sgdstab.shadows.lockstep import StepGroup
 from sgdstab.shadows.stacked import StackedEngine
 from sgdstab.shadows.stacking import _move_slots
 
+from ._optimizers import _optimizer
+
 WHOLE = 2**62   # a budget no test model reaches: one chunk
 
 
@@ -30,21 +32,6 @@ def _parcels(count: int = 96, features: int = 10, seed: int = 0) -> TensorDatase
     x = torch.randn(count, features, generator=g)
     y = (x[:, 0] + x[:, 1] * x[:, 2] > 0).long() + (x[:, 3] > 1).long()
     return TensorDataset(x, y)
-
-
-def _optimizer(kind: str, model: nn.Module) -> torch.optim.Optimizer:
-    if kind == "momentum_decay":
-        return torch.optim.SGD(model.parameters(), lr=0.05, momentum=0.9, weight_decay=1e-3)
-    if kind == "nesterov":
-        return torch.optim.SGD(model.parameters(), lr=0.05, momentum=0.9, nesterov=True,
-                               weight_decay=1e-3)
-    if kind == "dampening":
-        return torch.optim.SGD(model.parameters(), lr=0.05, momentum=0.8, dampening=0.3)
-    if kind == "adam":
-        return torch.optim.Adam(model.parameters(), lr=0.01, weight_decay=1e-4)
-    if kind == "adamw":
-        return torch.optim.AdamW(model.parameters(), lr=0.01, amsgrad=True)
-    return torch.optim.SGD(model.parameters(), lr=0.1)
 
 
 def _run(budget: int, monkeypatch, *, optimizer: str = "momentum_decay", dropout: float = 0.2,

@@ -17,7 +17,7 @@ if TYPE_CHECKING:
     from .batched import BatchedEngine
 
 __all__ = ["EngineFallbackWarning", "adopt", "fall_back", "fallback_fork", "fallback_step",
-           "load_into_module"]
+           "load_into_module", "move_to_per_shadow"]
 
 
 class EngineFallbackWarning(UserWarning):
@@ -28,6 +28,14 @@ def fall_back(engine: BatchedEngine, reason: str) -> None:
     """Move every run into its own module and optimizer and step them one by one from now."""
     warnings.warn(f"batched shadows: stepping shadows one by one instead, because {reason}",
                   EngineFallbackWarning, stacklevel=4)
+    move_to_per_shadow(engine)
+    engine.fallback_reason = reason
+    engine.name = "per_shadow"
+
+
+def move_to_per_shadow(engine: BatchedEngine) -> None:
+    """Give every run its own module and optimizer, with its state unchanged, under a
+    per-shadow engine that steps them from now on (``engine._fallback``)."""
     inner = PerShadowEngine(engine.main_model, engine.main_optimizer, engine.loss_of,
                             engine.before_step)
     inner.gradient_sync = engine.gradient_sync
@@ -44,8 +52,6 @@ def fall_back(engine: BatchedEngine, reason: str) -> None:
     if not keep_reference:
         engine.reference.forked = False
     engine._fallback = inner
-    engine.fallback_reason = reason
-    engine.name = "per_shadow"
 
 
 def adopt(engine: BatchedEngine, inner: PerShadowEngine, member: Shadow) -> None:

@@ -21,7 +21,7 @@ from .lockstep import (
     StepGroup,
     substitute_rows,
 )
-from .stacking import SlotState, _CannotBatch, _Stack
+from .stacking import SlotState, _CannotBatch, _Stack, _summed
 from .stackstep import Views, _StackStepper
 
 __all__ = ["STEP_MEMORY_BUDGET"]
@@ -64,11 +64,7 @@ class _HandStepper(_StackStepper):
             if not self.verified and number == 0:
                 self._verify(views, batch, rng_state, gradients)
             finite &= torch.isfinite(losses)
-            if total is None:
-                total = gradients
-            else:
-                for name in total:
-                    total[name] += gradients[name]
+            total = _summed(total, gradients)
         assert total is not None
         return total, finite
 
@@ -134,11 +130,7 @@ class _HandStepper(_StackStepper):
                     if not self.verified and number == 0 and start == 0:
                         self._verify(views, batch, rng_state, gradients)
                     finite[start:stop] &= torch.isfinite(losses)
-                    if total is None:
-                        total = gradients
-                    else:
-                        for name in total:
-                            total[name] += gradients[name]
+                    total = _summed(total, gradients)
                     del gradients
                 assert total is not None
                 held.update(self.update_slots(stack, total, finite, start, stop, pending))

@@ -42,6 +42,7 @@ from torch import nn
 
 from .batched import BatchedEngine
 from .chain import stacked_refusal
+from .fallback import move_to_per_shadow
 from .handstep import STEP_MEMORY_BUDGET, _HandStepper
 from .lockstep import LossOf, NeighbourSpec, PerShadowEngine, Shadow, StepGroup
 
@@ -154,21 +155,9 @@ class StackedEngine(BatchedEngine):
         self.name = "per_shadow"
 
     def _switch(self) -> None:
-        inner = PerShadowEngine(self.main_model, self.main_optimizer, self.loss_of,
-                                self.before_step)
-        inner.gradient_sync = self.gradient_sync
-        states = {id(m): self._state_of(m) for m in self.shadows
-                  if m.forked and self._has_state(m)}
         keep_reference = self.reference.forked and self._stepper.updates > 0
         assert not keep_reference, "the choice is made before any stacked step"
-        self._stack = None
-        for member in self.shadows:
-            self._adopt(inner, member)
-            if id(member) in states:
-                self._load_into_module(member, states[id(member)], self._constants)
-        inner.shadows = list(self.shadows)
-        self.reference.forked = False
-        self._fallback = inner
+        move_to_per_shadow(self)   # without a stacked step the reference is dropped
 
     # -- the choice travels with a checkpoint ---------------------------------------------------
     def shadow_state(self, shadow: Shadow) -> dict[str, Any]:

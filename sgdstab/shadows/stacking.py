@@ -295,3 +295,14 @@ def _stacked_leaves(batch: Any, count: int, hits: Mapping[int, Any]
         return tree_unflatten(items, spec)
 
     return tensors, dims, rebuild
+
+
+def _summed(total: dict[str, torch.Tensor] | None, gradients: dict[str, torch.Tensor]
+            ) -> dict[str, torch.Tensor]:
+    """The running sum of per-batch stacked gradients (gradient accumulation): ``gradients``
+    itself for the first batch, then added into ``total`` in place."""
+    if total is None:
+        return gradients
+    for name in total:
+        total[name] += gradients[name]
+    return total

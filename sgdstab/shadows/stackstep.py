@@ -18,7 +18,7 @@ from torch import nn
 from torch.func import functional_call, grad_and_value, vmap
 
 from .lockstep import LossOf, StepGroup, substitute_rows
-from .stacking import SlotState, _CannotBatch, _clone, _Stack, _stacked_leaves
+from .stacking import SlotState, _CannotBatch, _clone, _Stack, _stacked_leaves, _summed
 
 # Above this relative gap between the reference slot's gradient and an unbatched gradient of the
 # same parameters on the same batch and RNG state, the batched forward is not the main run's
@@ -94,11 +94,7 @@ class _StackStepper:
             if not self.verified and number == 0:
                 self._verify(views, batch, rng_state, gradients)
             finite &= torch.isfinite(losses.detach())
-            if total is None:
-                total = gradients
-            else:
-                for name in total:
-                    total[name] += gradients[name]
+            total = _summed(total, gradients)
         assert total is not None
         return total, finite
 

@@ -82,6 +82,7 @@ class SpreadStabilityTracker(StabilityTracker):
                                 "tracker on the group's ranks only")
         self.world_size = dist.get_world_size(shadow_group)
         self.shadow_timeout = float(shadow_timeout)
+        self._closed_together = False   # close() waits for the other ranks once
         self._monitored = dist.get_backend(shadow_group) == "gloo"
         self._source = dist.get_global_rank(shadow_group, 0)
         requested = options.get("engine", "auto")
@@ -328,7 +329,7 @@ class SpreadStabilityTracker(StabilityTracker):
         every rank of the shadow group has closed too: a rank that tore its process group down
         while another was still writing its last files was seen to abort gloo's teardown."""
         super().close()
-        if getattr(self, "_closed_together", False) or self.world_size < 2:
+        if self._closed_together or self.world_size < 2:
             return
         self._closed_together = True
         try:
