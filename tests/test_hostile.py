@@ -207,3 +207,17 @@ def test_one_shadow_or_none_gives_none_with_reasons_instead_of_dividing_by_zero(
     assert reading.divergence == () and reading.loss_difference_max is None
     assert reading.train_loss is not None
     assert any("no shadows" in note for note in reading.notes)
+
+
+def test_without_shadows_no_rng_state_is_kept_per_batch():
+    """With nothing to replay them, the per-batch RNG captures (one 5 kB tensor each) are
+    skipped; with the null-swap audit they are kept for its steps."""
+    data = pebbles()
+    none = _make(data=data, shadows=0, audit=False)
+    batches = none.batches(loader(data))
+    next(batches)
+    assert none._group.indices and none._group.rng_states == []
+    audited = _make(data=data, shadows=0, audit=True)
+    batches = audited.batches(loader(data))
+    next(batches)
+    assert len(audited._group.rng_states) == 1

@@ -14,6 +14,7 @@ from torch.utils.data._utils.collate import default_collate
 
 from sgdstab.shadows.lockstep import (
     LockstepError,
+    StepGroup,
     preserved_rng,
     select_rows,
     squared_distance,
@@ -168,3 +169,14 @@ def test_squared_distance_matches_numpy_in_float64_across_chunks():
     assert squared_distance(a, chunk=999) == pytest.approx(
         float((a.numpy().astype(np.float64) ** 2).sum()), rel=1e-12)
     assert squared_distance(a, a.clone()) == 0.0     # the null swap stays exactly zero
+
+
+def test_a_step_group_finds_an_examples_positions_batch_by_batch():
+    group = StepGroup([None], [np.array([4, 9, 4, 1])], [])
+    assert group.positions(0, 4) == [0, 2]
+    assert group.positions(0, 7) == []
+    group.batches.append(None)   # a second batch before the step (gradient accumulation)
+    group.indices.append(np.array([7, 3]))
+    assert group.positions(1, 7) == [0]
+    assert group.positions(1, 4) == []
+    assert group.positions(0, 7) == []

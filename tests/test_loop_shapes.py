@@ -166,6 +166,15 @@ def test_a_dataset_whose_len_is_too_small_is_a_clear_error():
     next(source)
     with pytest.raises(LockstepError, match=r"drew training index 60"):
         next(source)
+    # a negative index would silently read from the end of the dataset; one unsigned maximum
+    # catches it with the too-large ones
+    other = mlp()
+    fresh = StabilityTracker(other, _sgd(other), loss_fn=F.cross_entropy, train_set=data,
+                             shadows=1)
+    negative = fresh.batches(DataLoader(data, batch_sampler=[[1, 2, 3], [4, -2, 5]]))
+    next(negative)
+    with pytest.raises(LockstepError, match=r"drew training index -2"):
+        next(negative)
 
 
 # -- 3. the epoch-end evaluation and buffers updated in eval mode --------------------------------

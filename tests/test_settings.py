@@ -77,13 +77,11 @@ def test_the_data_parallel_tracker_takes_the_grouped_options(tmp_path):
     DataParallelStabilityTracker passes the settings objects on like the flat keywords."""
     script = tmp_path / "one_rank.py"
     script.write_text(
-        "import socket, torch, torch.distributed as dist, torch.nn as nn\n"
+        "import sys, torch, torch.distributed as dist, torch.nn as nn\n"
         "from torch.nn.parallel import DistributedDataParallel\n"
         "from torch.utils.data import TensorDataset\n"
         "from sgdstab import ConstantSettings, DataParallelStabilityTracker, ProbeSettings\n"
-        "with socket.socket() as s:\n"
-        "    s.bind(('127.0.0.1', 0)); port = s.getsockname()[1]\n"
-        "dist.init_process_group('gloo', init_method=f'tcp://127.0.0.1:{port}', rank=0,"
+        "dist.init_process_group('gloo', init_method=f'file://{sys.argv[1]}', rank=0,"
         " world_size=1)\n"
         "torch.manual_seed(0)\n"
         "data = TensorDataset(torch.randn(40, 3), torch.randint(0, 2, (40,)))\n"
@@ -96,7 +94,8 @@ def test_the_data_parallel_tracker_takes_the_grouped_options(tmp_path):
         "print(tracker.estimate_every, tracker.loss_bound, tracker.probe_size,"
         " tracker.estimate_constants)\n"
         "tracker.close(); dist.destroy_process_group()\n")
-    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
-                          timeout=120)
+    # a file store, not a TCP port: a port picked free can be taken before gloo binds it
+    done = subprocess.run([sys.executable, str(script), str(tmp_path / "store")],
+                          capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stderr[-2000:]
     assert done.stdout.split() == ["3", "2.0", "16", "True"]

@@ -58,7 +58,7 @@ class _HandStepper(_StackStepper):
             if not isinstance(batch, (list, tuple)) or len(batch) != 2 or \
                     not all(isinstance(t, torch.Tensor) for t in batch):
                 raise _CannotBatch("the batch is not an (inputs, targets) pair of tensors")
-            hits = self._hits(stack, batch, indices)
+            hits = self._hits(stack, group, number)
             torch.set_rng_state(rng_state)   # dropout masks as the main run drew them
             gradients, losses = self._one_batch(stack.parameters, batch, hits)
             if not self.verified and number == 0:
@@ -102,11 +102,11 @@ class _HandStepper(_StackStepper):
         if size >= slots or not self.loss_kind:
             return None
         prepared = []
-        for batch, indices, rng_state in zip(group.batches, group.indices, group.rng_states):
+        for number, (batch, rng_state) in enumerate(zip(group.batches, group.rng_states)):
             if not isinstance(batch, (list, tuple)) or len(batch) != 2 or \
                     not all(isinstance(t, torch.Tensor) for t in batch):
                 return None   # the whole-stack path says why it cannot step it
-            hits = self._hits(stack, batch, indices)
+            hits = self._hits(stack, group, number)
             targets = [batch[1], *(other[1] for _, other in hits.values())]
             if self.loss_kind == "cross_entropy" and not all(
                     t.dim() == 1 and not t.is_floating_point() and bool((t >= 0).all())
@@ -146,15 +146,17 @@ class _HandStepper(_StackStepper):
         self.finish_slots(stack, pending)
         return finite, held
 
-    def _hits(self, stack: _Stack, batch: Any, indices: np.ndarray
+    def _hits(self, stack: _Stack, group: StepGroup, number: int
               ) -> dict[int, tuple[np.ndarray, Any]]:
-        """The slots whose swapped example is in the batch: its positions and their batch."""
+        """The slots whose swapped example is in batch ``number`` of the group: its positions
+        and their batch."""
+        batch, rows = group.batches[number], len(group.indices[number])
         hits = {}
         for j, member in enumerate(stack.members):
-            positions = np.flatnonzero(indices == member.spec.index)
-            if positions.size:
-                hits[j] = (positions, substitute_rows(batch, member.row, positions.tolist(),
-                                                      len(indices)))
+            positions = group.positions(number, member.spec.index)
+            if positions:
+                hits[j] = (np.asarray(positions),
+                           substitute_rows(batch, member.row, positions, rows))
         return hits
 
     # -- one batch, all slots -----------------------------------------------------------------

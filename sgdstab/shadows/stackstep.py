@@ -81,10 +81,9 @@ class _StackStepper:
                 zip(group.batches, group.indices, group.rng_states)):
             hits = {}
             for j, member in enumerate(stack.members):
-                positions = np.flatnonzero(indices == member.spec.index)
-                if positions.size:
-                    hits[j] = substitute_rows(batch, member.row, positions.tolist(),
-                                              len(indices))
+                positions = group.positions(number, member.spec.index)
+                if positions:
+                    hits[j] = substitute_rows(batch, member.row, positions, len(indices))
             tensors, dims, rebuild = _stacked_leaves(batch, len(stack.members), hits)
             torch.set_rng_state(rng_state)
             with torch.enable_grad():

@@ -40,7 +40,9 @@ class StepHistory:
             self.hits = [[] for _ in range(self.shadows)]
 
     def record(self, step_size: float, batch_size: int, indices: np.ndarray,
-               hit_counts: list[int]) -> None:
+               hit_counts: list[int] | None) -> None:
+        """One step: its step size, batch size and drawn indices, and how often each shadow's
+        swapped index was drawn (None: no shadow's was)."""
         if self.runs and self.runs[-1][0] == step_size and self.runs[-1][1] == batch_size:
             self.runs[-1][2] += 1
         else:
@@ -50,9 +52,10 @@ class StepHistory:
             joined = np.concatenate(self._pending)
             self._indices.append(joined.astype(_compact(joined)))
             self._pending = []
-        for shadow, count in enumerate(hit_counts):
-            if count:
-                self.hits[shadow].append((self.steps, int(count)))
+        if hit_counts is not None:
+            for shadow, count in enumerate(hit_counts):
+                if count:
+                    self.hits[shadow].append((self.steps, int(count)))
         self.steps += 1
 
     def note_optimizer(self, step: int, reason: str) -> None:

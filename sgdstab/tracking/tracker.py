@@ -173,7 +173,7 @@ class StabilityTracker:
         self._siblings: dict[int, tuple[DataLoader, DataLoader, Any]] = {}   # persistent
         self.time_spent = TimeSpent()
         self._swapped: np.ndarray | None = None   # the shadows' swapped indices, for hit counts
-        self._is_swapped = np.zeros(0, dtype=bool)   # by training index (built with _swapped)
+        self._swapped_set: set[int] = set()   # the same as a set (built with _swapped)
         self.sinks = RunSinks(log_dir) if log_dir is not None and self._writes_files() else None
         if not self.lazy_fork:
             for shadow, mine in zip(self.shadows, held):
