@@ -301,12 +301,11 @@ class BatchedEngine:
         faulted: list[Shadow] = []
         if stack is None:
             return faulted
+        finite = stack.finite_slots()
         with torch.no_grad():
             for shadow in shadows:
-                if not shadow.active or id(shadow) not in stack.slot:
-                    continue
-                j = stack.slot[id(shadow)]
-                if all(bool(torch.isfinite(t[j]).all()) for t in stack.parameters.values()):
+                if not shadow.active or id(shadow) not in stack.slot or \
+                        finite[j := stack.slot[id(shadow)]]:
                     continue
                 shadow.state = stack.slice(j)  # type: ignore[attr-defined]
                 stack.slot.pop(id(shadow))

@@ -14,7 +14,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from .chain import _Dropout, _known_loss, _Linear, _plan
+from .chain import _Activation, _Dropout, _known_loss, _Linear, _plan
 from .lockstep import (
     LockstepError,
     LossOf,
@@ -269,6 +269,58 @@ class _HandStepper(_StackStepper):
                 raise _CannotBatch("the loss is not a scalar tensor")
             values.append(value.reshape(()))
         return torch.stack(values)
+
+    # -- evaluation -----------------------------------------------------------------------------
+    def evaluate(self, parameters: Mapping[str, torch.Tensor], batch: Any) -> np.ndarray | None:
+        """Every slot's per-example loss on ``batch`` in evaluation mode (dropout off), as
+        ``loss_fn(outputs, targets, reduction="none")`` gives it row by row: a [slots, rows]
+        float64 array. Products a chunk of slots at a time within ``STEP_MEMORY_BUDGET``. None
+        when the batch or the loss does not suit the stacked forward."""
+        if not self.loss_kind or not isinstance(batch, (list, tuple)) or len(batch) != 2 or \
+                not all(isinstance(t, torch.Tensor) for t in batch):
+            return None
+        inputs, targets = batch
+        rows = inputs.shape[0] if inputs.dim() else 0
+        first = parameters[self.layers[0].weight] if isinstance(self.layers[0], _Linear) \
+            else None
+        if first is None or rows == 0:
+            return None
+        x = inputs.reshape(rows, -1) if self.flatten_first else inputs
+        if x.dim() != 2 or x.shape[1] != first.shape[2] or x.dtype != first.dtype:
+            return None
+        if self.loss_kind == "cross_entropy" and not (
+                targets.dim() == 1 and not targets.is_floating_point() and
+                bool((targets >= 0).all())):
+            return None
+        slots = first.shape[0]
+        widths = [parameters[layer.weight].shape[1] for layer in self.layers
+                  if isinstance(layer, _Linear)]
+        size = max(1, STEP_MEMORY_BUDGET // max(1, 2 * rows * max(widths) * x.element_size()))
+        parts = []
+        with torch.no_grad():
+            for start in range(0, slots, size):
+                a = x.unsqueeze(0).expand(min(size, slots - start), rows, x.shape[1])
+                for layer in self.layers:
+                    if isinstance(layer, _Linear):
+                        out = torch.bmm(a, parameters[layer.weight][start:start + size]
+                                        .transpose(1, 2))
+                        if layer.bias is not None:
+                            out += parameters[layer.bias][start:start + size].unsqueeze(1)
+                        a = out
+                    elif isinstance(layer, _Activation):
+                        a = layer.forward(a)
+                outputs = a
+                count = outputs.shape[0]
+                if self.loss_kind == "cross_entropy":
+                    per = F.cross_entropy(outputs.reshape(count * rows, -1),
+                                          targets.repeat(count), reduction="none")
+                elif targets.shape == outputs.shape[1:]:
+                    per = F.mse_loss(outputs, targets.unsqueeze(0).expand_as(outputs),
+                                     reduction="none")
+                else:
+                    return None
+                parts.append(per.reshape(count, rows, -1).double().mean(dim=2))
+        return torch.cat(parts).numpy()
 
     def _tune(self, group: dict[str, Any]) -> None:
         """The optimizer's foreach kernels over the stack where the user left the choice to

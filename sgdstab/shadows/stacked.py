@@ -37,6 +37,7 @@ import warnings
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
+import numpy as np
 import torch
 from torch import nn
 
@@ -158,6 +159,27 @@ class StackedEngine(BatchedEngine):
         keep_reference = self.reference.forked and self._stepper.updates > 0
         assert not keep_reference, "the choice is made before any stacked step"
         move_to_per_shadow(self)   # without a stacked step the reference is dropped
+
+    # -- the epoch end ------------------------------------------------------------------------
+    def probe_losses(self, chunks: Sequence[Any], loss_fn: Callable[..., torch.Tensor] | None
+                     ) -> dict[int, np.ndarray] | None:
+        """Per-example losses of every stacked run (the reference included) on the probe's
+        ``chunks``, by ``id`` of the run: one batched product per layer for all runs, in
+        evaluation mode, instead of one forward pass per run. Only when the readings' losses
+        are ``loss_fn(outputs, targets, reduction="none")`` of the loss this engine steps with;
+        None otherwise (and with per-shadow stepping), so the runs are evaluated one by one."""
+        stack, stepper = self._stack, self._stepper
+        if loss_fn is not self.loss_fn or self._fallback is not None or stack is None or \
+                not isinstance(stepper, _HandStepper):
+            return None
+        parts = []
+        for chunk in chunks:
+            values = stepper.evaluate(stack.parameters, chunk)
+            if values is None:
+                return None
+            parts.append(values)
+        joined = np.concatenate(parts, axis=1) if parts else np.zeros((len(stack.members), 0))
+        return {id(member): joined[j] for j, member in enumerate(stack.members)}
 
     # -- the choice travels with a checkpoint ---------------------------------------------------
     def shadow_state(self, shadow: Shadow) -> dict[str, Any]:

@@ -97,6 +97,20 @@ class _Stack:
                                    for key, v in entry.items()}
         return SlotState(parameters, optimizer)
 
+    def finite_slots(self) -> list[bool]:
+        """Whether each slot's parameters are all finite: one sum per stacked tensor decides it
+        for every slot (an entry that is NaN or infinite makes its slot's sum so); only a slot
+        whose sum is not finite is looked at entry by entry (finite entries can overflow a
+        sum)."""
+        slots = len(self.members)
+        finite = [True] * slots
+        with torch.no_grad():
+            for stacked in self.parameters.values():
+                sums = stacked.detach().reshape(slots, -1).sum(1)
+                for j in torch.nonzero(~torch.isfinite(sums)).flatten().tolist():
+                    finite[j] = finite[j] and bool(torch.isfinite(stacked[j]).all())
+        return finite
+
     def modules(self, skeleton: nn.Module, constants: Mapping[str, torch.Tensor]
                 ) -> list[nn.Module]:
         """A module over each slot, aliasing the stack's tensors (built once per stack)."""

@@ -228,16 +228,24 @@ def probe_summary(model: nn.Module, engine: PerShadowEngine | BatchedEngine,
     Also returns the main model's training-row losses and the largest finite per-example loss.
     """
     main_losses = model_losses(model, probe, per_example)
-    reference_module = getattr(engine, "reference_module", lambda: None)()
-    reference_losses = None if reference_module is None else \
-        model_losses(reference_module, probe, per_example)
+    # the stacked engine's runs all at once, when they are evaluated as the main run was
+    stacked = getattr(engine, "probe_losses", lambda *_: None)(
+        probe.chunks, per_example.loss_fn) if per_example.vectorised else None
+    stacked = stacked or {}
+    reference_losses = stacked.get(id(getattr(engine, "reference", None)))
+    if reference_losses is None:
+        reference_module = getattr(engine, "reference_module", lambda: None)()
+        reference_losses = None if reference_module is None else \
+            model_losses(reference_module, probe, per_example)
     base_losses = main_losses if reference_losses is None else reference_losses
     shadow_losses = []
     for shadow in shadows:
+        found = stacked.get(id(shadow))
         if shadow.fault is not None:
             shadow_losses.append(np.full_like(main_losses, np.nan))
         elif shadow.forked:
-            shadow_losses.append(model_losses(engine.module_of(shadow), probe, per_example))
+            shadow_losses.append(found if found is not None else
+                                 model_losses(engine.module_of(shadow), probe, per_example))
         else:
             shadow_losses.append(base_losses)
     fresh, reason = fresh_replacements(shadows)
