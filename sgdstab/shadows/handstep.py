@@ -22,6 +22,7 @@ from .lockstep import (
     substitute_rows,
 )
 from .stacking import SlotState, _CannotBatch, _Stack, _summed
+from .stackloss import losses_and_gradient
 from .stackstep import Views, _StackStepper
 
 __all__ = ["STEP_MEMORY_BUDGET"]
@@ -53,8 +54,7 @@ class _HandStepper(_StackStepper):
                   ) -> tuple[dict[str, torch.Tensor], torch.Tensor]:
         finite = torch.ones(len(stack.members), dtype=torch.bool)
         total: dict[str, torch.Tensor] | None = None
-        for number, (batch, indices, rng_state) in enumerate(
-                zip(group.batches, group.indices, group.rng_states)):
+        for number, (batch, rng_state) in enumerate(zip(group.batches, group.rng_states)):
             if not isinstance(batch, (list, tuple)) or len(batch) != 2 or \
                     not all(isinstance(t, torch.Tensor) for t in batch):
                 raise _CannotBatch("the batch is not an (inputs, targets) pair of tensors")
@@ -217,11 +217,7 @@ class _HandStepper(_StackStepper):
                 saved.append((a, out))
                 a, fresh = out, False
         del x
-        with torch.enable_grad():
-            outputs = a.detach().requires_grad_(True)
-            losses = self._losses(outputs, targets, hits, rows)
-            (grad,) = torch.autograd.grad(losses.sum(), outputs)
-        losses = losses.detach()
+        losses, grad = losses_and_gradient(self.loss_kind, self.loss_fn, a, targets, hits)
         gradients: dict[str, torch.Tensor] = {}
         with torch.no_grad():
             for number in range(len(self.layers) - 1, -1, -1):
@@ -242,33 +238,6 @@ class _HandStepper(_StackStepper):
                     grad = layer.backward(grad, a_in, a_out)
                 del a_in, a_out
         return gradients, losses
-
-    def _losses(self, outputs: torch.Tensor, targets: torch.Tensor,
-                hits: Mapping[int, tuple[np.ndarray, Any]], rows: int) -> torch.Tensor:
-        """Each slot's loss on its own targets (a vector over slots, differentiable)."""
-        slots = outputs.shape[0]
-        if hits:
-            stacked = targets.unsqueeze(0).repeat(slots, *[1] * targets.dim())
-            for j, (_, other) in hits.items():
-                stacked[j] = other[1]
-        else:
-            stacked = targets.unsqueeze(0).expand(slots, *targets.shape)
-        kind = self.loss_kind
-        if kind == "cross_entropy" and targets.dim() == 1 and not targets.is_floating_point() \
-                and bool((stacked >= 0).all()):
-            per = F.cross_entropy(outputs.reshape(slots * rows, -1), stacked.reshape(-1),
-                                  reduction="none")
-            return per.view(slots, rows).mean(1)
-        if kind == "mse" and targets.shape == outputs.shape[1:]:
-            per = F.mse_loss(outputs, stacked, reduction="none")
-            return per.reshape(slots, -1).mean(1)
-        values = []
-        for j in range(slots):
-            value = self.loss_fn(outputs[j], stacked[j])
-            if not isinstance(value, torch.Tensor) or value.numel() != 1:
-                raise _CannotBatch("the loss is not a scalar tensor")
-            values.append(value.reshape(()))
-        return torch.stack(values)
 
     # -- evaluation -----------------------------------------------------------------------------
     def evaluate(self, parameters: Mapping[str, torch.Tensor], batch: Any) -> np.ndarray | None:

@@ -12,13 +12,13 @@ import functools
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
-import numpy as np
 import torch
 from torch import nn
 from torch.func import functional_call, grad_and_value, vmap
 
 from .lockstep import LossOf, StepGroup, substitute_rows
 from .stacking import SlotState, _CannotBatch, _clone, _Stack, _stacked_leaves, _summed
+from .stacksgd import stacked_sgd_step
 
 # Above this relative gap between the reference slot's gradient and an unbatched gradient of the
 # same parameters on the same batch and RNG state, the batched forward is not the main run's
@@ -176,7 +176,8 @@ class _StackStepper:
                 if key != "params":
                     group[key] = value
             self._tune(group)
-        stack.optimizer.step()
+        if not stacked_sgd_step(stack.optimizer):
+            stack.optimizer.step()
         for stacked in stack.parameters.values():
             stacked.grad = None
         self.updates += 1
@@ -216,7 +217,8 @@ class _StackStepper:
                 key: value[start:stop] if _spans_slots(value, stacked) else _clone(value)
                 for key, value in entry.items()}
             view.grad = gradients[name]
-        optimizer.step()
+        if not stacked_sgd_step(optimizer):
+            optimizer.step()
         for name, stacked in stack.parameters.items():
             view = views[name]
             view.grad = None
