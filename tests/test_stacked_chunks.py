@@ -183,3 +183,21 @@ def test_restacking_in_place_matches_building_new_stacks(monkeypatch):
     assert all(torch.equal(a, b) for a, b in zip(_state(in_place), _state(rebuilt)))
     assert [r.divergence for r in expected] == [r.divergence for r in got]
     assert in_place.engine._stack.buffers["0.weight"].shape[0] == 7   # reference + 6 runs
+
+
+def test_the_whole_stack_keeps_its_intermediates_only_for_one_batch_steps(monkeypatch):
+    """The whole-stack step writes its products into tensors kept from step to step (the
+    runs above compare it bit for bit with chunks, which make theirs afresh); with two
+    batches per step their gradients are summed, so nothing is kept."""
+    _, whole, _, _ = _run(WHOLE, monkeypatch, epochs=1)
+    kept = whole.engine._stepper._workspace
+    assert {kind for kind, _ in kept} == {"out", "drop", "weight", "input"}
+    places = []
+    for x, y in whole.batches(DataLoader(whole.train_set, batch_size=16)):   # epoch 2
+        whole.optimizer.zero_grad()
+        F.cross_entropy(whole.model(x), y).backward()
+        whole.optimizer.step()
+        places.append({key: t.data_ptr() for key, t in kept.items()})
+    assert len(places) == 6 and all(p == places[0] for p in places)   # the same memory
+    _, accumulated, _, _ = _run(WHOLE, monkeypatch, epochs=1, accumulate=True)
+    assert accumulated.engine._stepper._workspace == {}

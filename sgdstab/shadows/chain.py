@@ -66,11 +66,15 @@ class _Activation:
             return z.sigmoid_()
         return self.forward(z)
 
-    def backward(self, grad: torch.Tensor, z: torch.Tensor, a: torch.Tensor) -> torch.Tensor:
+    def backward(self, grad: torch.Tensor, z: torch.Tensor, a: torch.Tensor,
+                 in_place: bool = False) -> torch.Tensor:
         """The derivative through the activation, by torch's own backward kernels (the ones
-        autograd uses), from its input ``z`` and output ``a``."""
+        autograd uses), from its input ``z`` and output ``a``; with ``in_place``, written over
+        ``grad`` where the kernel allows (relu: it selects, so the values are the same)."""
         m, kind, aten = self.module, self.kind, torch.ops.aten
         if kind == "relu":
+            if in_place:
+                return aten.threshold_backward.grad_input(grad, a, 0, grad_input=grad)
             return aten.threshold_backward(grad, a, 0)
         if kind == "leaky_relu":
             return aten.leaky_relu_backward(grad, z, m.negative_slope, False)
