@@ -61,8 +61,10 @@ def launch_ranks(worker: Path, config: dict, tmp_path: Path, world: int = 2,
 def run_torchrun(example: Path, args: list[str], timeout: float = 150.0) -> str:
     """Run ``example`` under torchrun with 2 CPU processes on 127.0.0.1; its output (it must
     exit 0)."""
-    command = [sys.executable, "-m", "torch.distributed.run", "--nnodes=1", "--nproc-per-node=2",
-               "--master-addr=127.0.0.1", f"--master-port={free_port()}", str(example), *args]
+    # --standalone: torchrun binds a free port itself (one picked here first could be taken
+    # by another process before torchrun binds it)
+    command = [sys.executable, "-m", "torch.distributed.run", "--standalone",
+               "--nproc-per-node=2", str(example), *args]
     env = {**os.environ, "OMP_NUM_THREADS": "1", "GLOO_SOCKET_IFNAME": "lo"}
     proc = subprocess.Popen(command, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
                             start_new_session=True)
