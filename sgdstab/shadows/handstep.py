@@ -175,6 +175,7 @@ class _HandStepper(_StackStepper):
         stepped a chunk at a time: the first chunk draws the masks, the others reuse them.
         ``keep``: the products and the dropout outputs go into tensors kept for the next step
         (``_kept``), and the gradients returned are those tensors: they hold until then."""
+        place = self._kept if keep else _fresh
         inputs, targets = batch
         rows = inputs.shape[0]
         first = self.layers[0]
@@ -204,11 +205,8 @@ class _HandStepper(_StackStepper):
             for position, layer in enumerate(self.layers):
                 if isinstance(layer, _Linear):
                     weight = parameters[layer.weight]
-                    out = torch.bmm(a, weight.transpose(1, 2), out=self._kept(
-                        "out", position, (slots, rows, weight.shape[1]), weight)) if keep \
-                        else torch.bmm(a, weight.transpose(1, 2))
-                    if layer.bias is not None:
-                        out += parameters[layer.bias].unsqueeze(1)
+                    out = _affine(a, layer, parameters, place(
+                        "out", position, (slots, rows, weight.shape[1]), weight))
                     saved.append((a, None))
                     a, fresh = out, True
                     continue
@@ -220,9 +218,8 @@ class _HandStepper(_StackStepper):
                         if key not in masks:
                             masks[key] = layer.noise(a)
                         noise = masks[key]
-                    out = a if noise is None else torch.mul(
-                        a, noise, out=self._kept("drop", position, a.shape, a)) if keep \
-                        else a * noise
+                    out = a if noise is None else \
+                        torch.mul(a, noise, out=place("drop", position, a.shape, a))
                     saved.append((a, noise))
                     a, fresh = out, False
                     continue
@@ -242,14 +239,12 @@ class _HandStepper(_StackStepper):
                     weight = parameters[layer.weight]
                     gradients[layer.weight] = torch.bmm(
                         grad.transpose(1, 2), a_in,
-                        out=self._kept("weight", number, weight.shape, weight)) if keep \
-                        else torch.bmm(grad.transpose(1, 2), a_in)
+                        out=place("weight", number, weight.shape, weight))
                     if layer.bias is not None:
                         gradients[layer.bias] = grad.sum(1)
                     if number:
-                        grad = torch.bmm(grad, weight, out=self._kept(
-                            "input", number, (slots, rows, weight.shape[2]), weight)) if keep \
-                            else torch.bmm(grad, weight)
+                        grad = torch.bmm(grad, weight, out=place(
+                            "input", number, (slots, rows, weight.shape[2]), weight))
                 elif isinstance(layer, _Dropout):
                     if a_out is not None:   # ``grad`` is this step's own: scaled in place
                         grad = grad.mul_(a_out)
@@ -303,14 +298,11 @@ class _HandStepper(_StackStepper):
         with torch.no_grad():
             for start in range(0, slots, size):
                 a = x.unsqueeze(0).expand(min(size, slots - start), rows, x.shape[1])
+                mine = {name: t[start:start + size] for name, t in parameters.items()}
                 fresh = False   # whether ``a`` is a product nothing else reads
                 for layer in self.layers:
                     if isinstance(layer, _Linear):
-                        out = torch.bmm(a, parameters[layer.weight][start:start + size]
-                                        .transpose(1, 2))
-                        if layer.bias is not None:
-                            out += parameters[layer.bias][start:start + size].unsqueeze(1)
-                        a, fresh = out, True
+                        a, fresh = _affine(a, layer, mine), True
                     elif isinstance(layer, _Activation):
                         a = layer.forward_in_place(a) if fresh else layer.forward(a)
                 outputs = a
@@ -330,6 +322,22 @@ class _HandStepper(_StackStepper):
         """The optimizer's foreach kernels over the stack where the user left the choice to
         torch."""
         _fastest_kernel(group)
+
+
+def _affine(a: torch.Tensor, layer: _Linear, parameters: Mapping[str, torch.Tensor],
+            out: torch.Tensor | None = None) -> torch.Tensor:
+    """A Linear layer over every slot: one batched product, then the bias added in place
+    (``out``: where the product goes)."""
+    result = torch.bmm(a, parameters[layer.weight].transpose(1, 2), out=out)
+    if layer.bias is not None:
+        result += parameters[layer.bias].unsqueeze(1)
+    return result
+
+
+def _fresh(kind: str, position: int, shape: Sequence[int], like: torch.Tensor) -> None:
+    """No kept tensor: the operation allocates its result (``_HandStepper._kept``'s
+    stand-in when the step keeps nothing)."""
+    return None
 
 
 def _rows(batch: Any) -> int:
