@@ -11,6 +11,8 @@ from __future__ import annotations
 import json
 import math
 import os
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -232,3 +234,34 @@ def test_torchrun_example_runs_on_two_cpu_processes(tmp_path):
     assert len(lines) == 2                                   # printed by rank 0 only
     assert "null-swap audit 0.0" in lines[0]
     assert len((tmp_path / "turbines" / "history.jsonl").read_text().splitlines()) == 2
+
+
+def test_close_waits_until_every_rank_has_closed(tmp_path):
+    """Rank 0 closes 2 s after rank 1 (as when it writes the run directory): rank 1's close()
+    returns only then, so no rank tears the process group down while another still uses it."""
+    script = tmp_path / "two_ranks.py"
+    script.write_text(
+        "import sys, time, torch, torch.distributed as dist, torch.nn as nn\n"
+        "from torch.nn.parallel import DistributedDataParallel\n"
+        "from torch.utils.data import TensorDataset\n"
+        "from sgdstab import DataParallelStabilityTracker\n"
+        "rank = int(sys.argv[2])\n"
+        "dist.init_process_group('gloo', init_method=f'file://{sys.argv[1]}', rank=rank,"
+        " world_size=2)\n"
+        "torch.manual_seed(0)\n"
+        "data = TensorDataset(torch.randn(40, 3), torch.randint(0, 2, (40,)))\n"
+        "model = DistributedDataParallel(nn.Linear(3, 2))\n"
+        "tracker = DataParallelStabilityTracker(model, torch.optim.SGD(model.parameters(), lr=0.1),"
+        " loss_fn=nn.functional.cross_entropy, train_set=data, shadows=2)\n"
+        "if rank == 0:\n"
+        "    time.sleep(2.0)\n"
+        "start = time.monotonic(); tracker.close(); print(round(time.monotonic() - start, 2))\n"
+        "dist.destroy_process_group()\n")
+    store = tmp_path / "store"
+    procs = [subprocess.Popen([sys.executable, str(script), str(store), str(rank)],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+             for rank in range(2)]
+    outputs = [proc.communicate(timeout=120) for proc in procs]
+    assert all(proc.returncode == 0 for proc in procs), [err[-2000:] for _, err in outputs]
+    waited = [float(out.split()[-1]) for out, _ in outputs]
+    assert waited[1] >= 1.5 > waited[0]   # rank 1 waited for rank 0's close

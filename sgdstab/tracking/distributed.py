@@ -31,6 +31,7 @@ from torch.utils.data.distributed import DistributedSampler
 from ..outputs.reading import EpochReading
 from ..shadows.loaders import SizedBatches
 from ..shadows.lockstep import LockstepError, NeighbourSpec, StepGroup, select_rows
+from .spread import wait_for_ranks
 from .tracker import LockstepWarning, StabilityTracker
 
 __all__ = ["DataParallelStabilityTracker", "ReplicaGradientAverager"]
@@ -216,6 +217,7 @@ class DataParallelStabilityTracker(StabilityTracker):
         self._gathered: tuple[StepGroup, np.ndarray] | None = None
         self._pending_notes: list[str] = []
         self._last_epoch_seen: int | None = None
+        self._closed_together = False   # close() waits for the other ranks once
         super().__init__(model.module, optimizer, train_set=train_set, **options)
         self.engine.gradient_sync = self.averager
         try:
@@ -227,6 +229,18 @@ class DataParallelStabilityTracker(StabilityTracker):
             self._warn_once("fallback", "DDP's reducer internals are not available in this torch "
                             "version: shadow gradients are averaged per parameter, which matches "
                             "DDP bit for bit only with two ranks", UserWarning)
+
+    def close(self) -> None:
+        """Remove the hooks and close the writers, then wait (once, at most a minute) until
+        every rank has closed too: with rank 0 still writing its files, a rank that went on to
+        tear the process group down was seen to abort (SIGABRT in gloo's teardown; twice in the
+        full suite, in the torchrun example)."""
+        super().close()
+        if self._closed_together or self.world_size < 2:
+            return
+        self._closed_together = True
+        wait_for_ranks(self.process_group, self.rank,
+                       dist.get_backend(self.process_group) == "gloo", 60.0, "process group")
 
     # -- agreement between ranks -------------------------------------------------------------
     def _gather_objects(self, value: Any) -> list[Any]:
@@ -372,4 +386,3 @@ class DataParallelStabilityTracker(StabilityTracker):
             "gradient_average": "ddp_buckets" if self.averager.exact else "per_parameter",
         }
         return description
-

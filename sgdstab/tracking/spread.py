@@ -332,16 +332,8 @@ class SpreadStabilityTracker(StabilityTracker):
         if self._closed_together or self.world_size < 2:
             return
         self._closed_together = True
-        try:
-            if self._monitored:
-                dist.monitored_barrier(group=self.shadow_group,
-                                       timeout=timedelta(seconds=min(60.0, self.shadow_timeout)),
-                                       wait_all_ranks=True)
-            else:
-                dist.barrier(group=self.shadow_group)
-        except Exception as error:   # noqa: BLE001 - the run is over; say so, do not raise
-            warnings.warn(f"rank {self.rank}: the other ranks of the shadow group did not all "
-                          f"close their trackers within a minute: {error}", stacklevel=2)
+        wait_for_ranks(self.shadow_group, self.rank, self._monitored,
+                       min(60.0, self.shadow_timeout), "shadow group")
 
     def describe(self) -> dict[str, Any]:
         description = super().describe()
@@ -352,3 +344,18 @@ class SpreadStabilityTracker(StabilityTracker):
             "shadow_timeout": self.shadow_timeout,
         }
         return description
+
+
+def wait_for_ranks(group: Any, rank: int, monitored: bool, seconds: float, name: str) -> None:
+    """Wait until every rank of ``group`` gets here (the trackers' ``close``): a barrier, with
+    gloo a monitored one bounded by ``seconds``. A rank that does not come is warned about, not
+    raised: the run is over."""
+    try:
+        if monitored:
+            dist.monitored_barrier(group=group, timeout=timedelta(seconds=seconds),
+                                   wait_all_ranks=True)
+        else:
+            dist.barrier(group=group)
+    except Exception as error:   # noqa: BLE001 - the run is over; say so, do not raise
+        warnings.warn(f"rank {rank}: the other ranks of the {name} did not all close their "
+                      f"trackers within {seconds:.0f} s: {error}", stacklevel=3)
