@@ -94,6 +94,42 @@ def test_without_held_out_loss_training_loss_plus_the_gap_estimate_decides():
     assert "an estimate, not a bound" in advice.criterion_named("estimated_risk").reason
 
 
+def test_a_noisy_gap_estimate_picks_the_earliest_epoch_within_one_standard_error():
+    # train 1/e, gap estimate 0 except a dip of -0.5 at epoch 9 with a standard error of 0.6:
+    # the dip is noise; the one-standard-error rule (common practice in model selection) takes
+    # the earliest epoch whose value is within 0.6 of the minimum
+    train = [1.0 / e for e in range(1, 13)]
+    gaps = [0.0] * 12
+    gaps[8] = -0.5
+    readings = [reading(e, train=train[e - 1], gap=gaps[e - 1], stderr=0.6) for e in range(1, 13)]
+    advice = advise(readings)
+    values = np.array(train) + np.array(gaps)
+    low = int(np.argmin(values))
+    expected = int(np.flatnonzero(values <= values[low] + 0.6)[0]) + 1   # numpy, independent
+    assert low + 1 == 9 and expected == 5   # 1/5 <= 1/9 - 0.5 + 0.6 < 1/4
+    criterion = advice.criterion_named("estimated_risk")
+    assert advice.criterion == "estimated_risk" and advice.suggested_epoch == expected
+    assert criterion.value == pytest.approx(values[expected - 1])
+    assert "smallest at epoch 9" in criterion.reason and "one-standard-error" in criterion.reason
+    # a precise estimate keeps the minimum itself
+    sharp = advise([reading(e, train=train[e - 1], gap=gaps[e - 1], stderr=0.01)
+                    for e in range(1, 13)])
+    assert sharp.suggested_epoch == 9
+
+
+def test_a_gap_estimate_within_noise_everywhere_chooses_nothing():
+    # every epoch within one standard error of the minimum: the estimate cannot single one out,
+    # so the advice falls to the next criterion (here none: no divergences recorded)
+    readings = [reading(e, train=0.5 + 0.01 * (e % 3), gap=0.0, stderr=1.0) for e in range(1, 7)]
+    advice = advise(readings)
+    criterion = advice.criterion_named("estimated_risk")
+    assert criterion.epoch is None and "does not single out an epoch" in criterion.reason
+    assert advice.criterion != "estimated_risk"
+    # one epoch more, far below the rest beyond the error, is chosen
+    lower = advise([*readings, reading(7, train=0.1, gap=0.0, stderr=0.05)])
+    assert lower.suggested_epoch == 7 and lower.criterion == "estimated_risk"
+
+
 def test_falls_back_to_divergence_acceleration_without_a_gap_estimate():
     values = [0.1 * e for e in range(1, 7)] + [0.6 + 0.1 * k + 0.05 * k * k for k in range(1, 6)]
     readings = [reading(e, train=1.0 / e, divergence=(v,),

@@ -5,8 +5,9 @@
 **The suggested stop follows the measured evidence** (``follow="measured"``, the default):
 ``holdout_loss``, the epoch with the lowest loss on the held-out examples no shadow swapped in;
 without a held-out set, ``estimated_risk``, training loss + the replace-one estimate of the
-*expected* gap; without either, ``divergence_acceleration`` (a heuristic: the divergence starts to
-grow faster than linearly; see ``sgdstab.outputs.trends``).
+*expected* gap (the earliest epoch within one standard error of its minimum; none when every
+epoch is within it); without either, ``divergence_acceleration`` (a heuristic: the divergence
+starts to grow faster than linearly; see ``sgdstab.outputs.trends``).
 
 **The guarantee is reported beside it, never choosing by default**: up to which epoch a stability
 bound stays within a target (default: a tenth of the trivial loss). The bound used is

@@ -276,13 +276,9 @@ def _measured_pick(rows: Sequence[AdviceRow], ordered: Sequence[EpochReading],
     else:
         out.append(Criterion("holdout_loss", None, None,
                              "Unavailable: no held-out set (pass replacements=<held-out set>)."))
-    pairs = [(r.epoch, r.measured_risk) for r in rows if r.measured_risk is not None]
-    if pairs:
-        epoch, value = min(pairs, key=lambda pair: (pair[1], pair[0]))
-        out.append(Criterion("estimated_risk", epoch, value,
-                             f"Training loss + the replace-one estimate of the expected gap is "
-                             f"smallest at epoch {epoch} ({value:.4g}), an estimate, not a bound"
-                             + _edge_note(epoch, rows[-1].epoch, len(pairs)) + "."))
+    estimated = _estimated_risk(rows)
+    if estimated is not None:
+        out.append(estimated)
     name = "divergence_acceleration"
     if table is None:
         out.append(Criterion(name, None, None,
@@ -302,6 +298,42 @@ def _measured_pick(rows: Sequence[AdviceRow], ordered: Sequence[EpochReading],
         out.append(Criterion(name, None, None,
                              "The divergence has not grown faster than linearly so far."))
     return out
+
+
+def _estimated_risk(rows: Sequence[AdviceRow]) -> Criterion | None:
+    """Training loss + the replace-one gap estimate, read with its standard error.
+
+    The estimate averages only K shadows, so its minimum is often noise. The pick is the earliest
+    epoch within one standard error of the minimum (the one-standard-error rule of model
+    selection, common practice); when every recorded epoch is within it, the estimate does not
+    single out an epoch and the criterion picks none (the advice then falls to the next one)."""
+    triples = [(r.epoch, r.measured_risk, r.gap_stderr) for r in rows
+               if r.measured_risk is not None]
+    if not triples:
+        return None
+    low_epoch, low, error = min(triples, key=lambda t: (t[1], t[0]))
+    name, what = "estimated_risk", "Training loss + the replace-one estimate of the expected gap"
+    if error is None or error == 0.0:
+        return Criterion(name, low_epoch, low,
+                         f"{what} is smallest at epoch {low_epoch} ({low:.4g}), an estimate, "
+                         "not a bound" + _edge_note(low_epoch, rows[-1].epoch, len(triples))
+                         + ".")
+    within = [(e, v) for e, v, _ in triples if v <= low + error]
+    smallest = f"{what} is smallest at epoch {low_epoch} ({low:.4g} +/- {error:.2g} standard error)"
+    if len(triples) > 1 and len(within) == len(triples):
+        return Criterion(name, None, None,
+                         f"{smallest}, but every recorded epoch is within one standard error "
+                         "of it: the estimate does not single out an epoch (more shadows "
+                         "narrow it).")
+    epoch, value = within[0]
+    if epoch == low_epoch:
+        return Criterion(name, epoch, value,
+                         f"{smallest}, an estimate, not a bound"
+                         + _edge_note(epoch, rows[-1].epoch, len(triples)) + ".")
+    return Criterion(name, epoch, value,
+                     f"{smallest}; epoch {epoch} ({value:.4g}) is the earliest within one "
+                     "standard error of it, so the later minimum is not told apart from it "
+                     "beyond noise (the one-standard-error rule); an estimate, not a bound.")
 
 
 def _follow_sentence(chosen: Criterion | None, guarantee: Criterion, bound_name: str,
