@@ -125,6 +125,9 @@ def test_a_gap_estimate_within_noise_everywhere_chooses_nothing():
     criterion = advice.criterion_named("estimated_risk")
     assert criterion.epoch is None and "does not single out an epoch" in criterion.reason
     assert advice.criterion != "estimated_risk"
+    measured = next(line for line in advice.verdict if line.topic == "Measured stop")
+    assert measured.status == "warn" and "does not single out an epoch" in measured.text
+    assert "does not single out an epoch" in advice.reason
     # one epoch more, far below the rest beyond the error, is chosen
     lower = advise([*readings, reading(7, train=0.1, gap=0.0, stderr=0.05)])
     assert lower.suggested_epoch == 7 and lower.criterion == "estimated_risk"

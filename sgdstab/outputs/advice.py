@@ -49,6 +49,7 @@ from .criteria import (
     _rows,
     _shadows_needed,
     _trivial,
+    _unchosen,
     _with_target,
 )
 from .reading import EpochReading, json_safe
@@ -284,13 +285,14 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
     guarantee = next(c for c in criteria if c.name == "guarantee")
     if follow == "guarantee" and guarantee.epoch is not None:
         chosen = guarantee
-    reason = _follow_sentence(chosen, guarantee, bound_name, target)
+    why_none = _unchosen(criteria)
+    reason = _follow_sentence(chosen, guarantee, bound_name, target, why_none)
     last = ordered[-1]
     needed = _shadows_needed(last)
     verdict = verdict_lines(ordered, rows, chosen=chosen, guarantee=guarantee,
                             bound_name=bound_name, target=target, target_source=target_source,
                             certified=certified, bound_reason=bound_reason, follow=reason,
-                            shadows_needed=needed)
+                            shadows_needed=needed, why_none=why_none)
     return StopAdvice(
         None if chosen is None else chosen.epoch, None if chosen is None else chosen.name,
         reason, tuple(rows), criteria, budget, bound_applies, bound_reason, certified, len(rows),

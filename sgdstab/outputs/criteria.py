@@ -336,12 +336,24 @@ def _estimated_risk(rows: Sequence[AdviceRow]) -> Criterion | None:
                      "beyond noise (the one-standard-error rule); an estimate, not a bound.")
 
 
+def _unchosen(criteria: Sequence[Criterion]) -> str:
+    """Why no measured criterion picked an epoch, one clause each."""
+    named = {c.name: c for c in criteria}
+    estimate = named.get("estimated_risk")
+    return ", ".join((
+        "no held-out loss",
+        "no gap estimate" if estimate is None else
+        "a gap estimate that does not single out an epoch (every epoch within one standard "
+        "error of its minimum)",
+        "and no divergence acceleration"))
+
+
 def _follow_sentence(chosen: Criterion | None, guarantee: Criterion, bound_name: str,
-                     target: float | None) -> str:
+                     target: float | None, why_none: str = "") -> str:
     """One sentence saying which stop to follow and why."""
     if chosen is None:
-        return ("No criterion could choose an epoch: there is no held-out set, no gap estimate "
-                "and no divergence acceleration; add a held-out set (replacements=...).")
+        return (f"No criterion could choose an epoch: there is {why_none}; add a held-out set "
+                "(replacements=...).")
     if chosen.name == "guarantee":
         return (f"Following the guarantee (follow='guarantee'): epoch {chosen.epoch} is the last "
                 f"whose {bound_name} stays within {target:.4g}.")

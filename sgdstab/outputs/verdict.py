@@ -34,13 +34,14 @@ class VerdictLine:
 def verdict_lines(ordered: Sequence[EpochReading], rows: Sequence[AdviceRow], *,
                   chosen: Criterion | None, guarantee: Criterion, bound_name: str,
                   target: float | None, target_source: str, certified: bool, bound_reason: str,
-                  follow: str, shadows_needed: int | None) -> list[VerdictLine]:
+                  follow: str, shadows_needed: int | None, why_none: str = ""
+                  ) -> list[VerdictLine]:
     """The verdict for a run (see the module docstring)."""
     return [
         _lockstep(ordered),
         _pathwise(ordered, rows),
         _guarantee(rows, guarantee, bound_name, target, target_source, certified, bound_reason),
-        _measured(chosen),
+        _measured(chosen, why_none),
         _gaps(ordered[-1], shadows_needed),
         VerdictLine("Which stop to follow", "info", follow),
     ]
@@ -118,12 +119,12 @@ def _guarantee(rows: Sequence[AdviceRow], guarantee: Criterion, bound_name: str,
     return VerdictLine(topic, status, text)
 
 
-def _measured(chosen: Criterion | None) -> VerdictLine:
+def _measured(chosen: Criterion | None, why_none: str) -> VerdictLine:
     topic = "Measured stop"
     if chosen is None or chosen.name == "guarantee":
         return VerdictLine(topic, "warn" if chosen is None else "info",
-                           "none: no held-out loss, gap estimate or divergence acceleration "
-                           "was measured." if chosen is None else "see the guarantee.")
+                           f"none: there is {why_none}." if chosen is None else
+                           "see the guarantee.")
     return VerdictLine(topic, "ok", f"epoch {chosen.epoch}: {chosen.reason}")
 
 
