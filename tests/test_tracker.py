@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import time
 import warnings
 
@@ -364,3 +365,25 @@ def test_time_spent_accounts_for_the_tracker_by_part():
     with pytest.warns(UserWarning, match="called again"):
         tracker.finish_epoch()
     assert (spent.recording, spent.step_hooks, spent.shadow_steps) == before
+
+
+def test_a_held_out_set_used_up_by_the_swaps_reports_its_rows_count_and_error():
+    # three shadows, three held-out examples: every one is swapped in, so no held-out example is
+    # left for the full evaluation and the held-out loss comes from the probe's rows (the
+    # replacements, which the main run never trains on); it must say how many and how noisy
+    data, held_out = pebbles(96), pebbles(3, seed=5)
+    model = mlp(dropout=0.0)
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+    tracker = StabilityTracker(model, optimizer, loss_fn=F.cross_entropy, train_set=data,
+                               shadows=3, replacements=held_out, seed=0)
+    reading = train(model, optimizer, loader(data), epochs=1, tracker=tracker)[-1]
+    with torch.no_grad():   # independent: torch's per-example losses, numpy's mean and std
+        losses = F.cross_entropy(model(held_out.tensors[0]), held_out.tensors[1],
+                                 reduction="none").double().numpy()
+    assert sorted(s.spec.source_index for s in tracker.shadows) == [0, 1, 2]
+    assert reading.holdout_count == 3
+    assert reading.holdout_loss == pytest.approx(losses.mean(), rel=1e-6)
+    assert reading.holdout_stderr == pytest.approx(losses.std(ddof=1) / math.sqrt(3), rel=1e-6)
+    assert any("every held-out example is a shadow's replacement" in n for n in reading.notes)
+    reason = tracker.advise().criterion_named("holdout_loss").reason
+    assert "(standard error) on 3 held-out examples" in reason

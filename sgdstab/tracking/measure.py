@@ -304,6 +304,11 @@ def epoch_reading(epoch: int, steps: int, shadows: Sequence[Shadow], divergence:
         if fault is not None:
             notes.append(f"shadow_{k} frozen: {fault}")
     held = held_out if held_out is not None and held_out.count else None
+    probe_held = held is None and summary.holdout_loss is not None
+    if probe_held and held_out is not None:
+        notes.append(f"held-out loss on the probe's {summary.holdout_rows} held-out row(s): every "
+                     "held-out example is a shadow's replacement (never trained on by the main "
+                     "run); a larger held-out set gives a steadier stop")
     return EpochReading(
         epoch=epoch, steps=steps, divergence=tuple(divergence),
         audit_divergence=audit, layer_divergence=layer,
@@ -312,8 +317,10 @@ def epoch_reading(epoch: int, steps: int, shadows: Sequence[Shadow], divergence:
         gap_estimate=summary.gap_estimate, gap_stderr=summary.gap_stderr,
         train_loss=summary.train_loss,
         holdout_loss=summary.holdout_loss if held is None else held.loss,
-        holdout_count=0 if held is None else held.count,
-        holdout_stderr=None if held is None else held.stderr,
+        holdout_count=held.count if held is not None else
+        summary.holdout_rows if probe_held else 0,
+        holdout_stderr=held.stderr if held is not None else
+        summary.holdout_stderr if probe_held else None,
         run_gap=None if held is None else held.run_gap,
         run_gap_low=None if held is None else held.run_gap_low,
         run_gap_high=None if held is None else held.run_gap_high,

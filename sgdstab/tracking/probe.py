@@ -174,6 +174,8 @@ class ProbeSummary:
     train_loss: float | None
     holdout_loss: float | None
     notes: tuple[str, ...]
+    holdout_rows: int = 0                 # the probe's held-out rows behind holdout_loss
+    holdout_stderr: float | None = None   # their standard error (at least 2 rows)
 
 
 def _mean(values: np.ndarray) -> float | None:
@@ -229,10 +231,18 @@ def summarise_probe(main: np.ndarray, shadows: Sequence[np.ndarray], probe: Prob
         else:
             notes.append("gap estimate: no shadow has finite losses")
     train_rows = np.isin(probe.kinds, ["out", "train"])
-    holdout_rows = np.isin(probe.kinds, ["in", "holdout"])
+    # the seeded sample of the held-out set (distinct examples, the main run never trains on
+    # them); the swapped-in rows only when there is no such sample (they repeat its examples)
+    holdout_rows = probe.kinds == "holdout"
+    if not holdout_rows.any():
+        holdout_rows = probe.kinds == "in"
     train_loss = _mean(main[train_rows])
-    holdout_loss = _mean(main[holdout_rows]) if fresh_replacements else None
+    held = main[holdout_rows] if fresh_replacements else np.zeros(0)
+    holdout_loss = _mean(held) if fresh_replacements else None
     if not fresh_replacements:
         notes.append("holdout loss not available: no held-out replacement set")
+    held_error = float(held.std(ddof=1) / math.sqrt(held.size)) \
+        if held.size >= 2 and np.isfinite(held).all() else None
     return ProbeSummary(difference_max, difference_mean, gap, stderr, train_loss, holdout_loss,
-                        tuple(notes))
+                        tuple(notes), int(held.size) if holdout_loss is not None else 0,
+                        held_error if holdout_loss is not None else None)
