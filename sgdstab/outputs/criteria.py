@@ -312,25 +312,21 @@ def _estimated_risk(rows: Sequence[AdviceRow]) -> Criterion | None:
     if not triples:
         return None
     low_epoch, low, error = min(triples, key=lambda t: (t[1], t[0]))
-    name, what = "estimated_risk", "Training loss + the replace-one estimate of the expected gap"
-    if error is None or error == 0.0:
-        return Criterion(name, low_epoch, low,
-                         f"{what} is smallest at epoch {low_epoch} ({low:.4g}), an estimate, "
-                         "not a bound" + _edge_note(low_epoch, rows[-1].epoch, len(triples))
-                         + ".")
-    within = [(e, v) for e, v, _ in triples if v <= low + error]
-    smallest = f"{what} is smallest at epoch {low_epoch} ({low:.4g} +/- {error:.2g} standard error)"
-    if len(triples) > 1 and len(within) == len(triples):
-        return Criterion(name, None, None,
+    spread = f" +/- {error:.2g} standard error" if error else ""
+    smallest = (f"Training loss + the replace-one estimate of the expected gap is smallest at "
+                f"epoch {low_epoch} ({low:.4g}{spread})")
+    within = [(e, v) for e, v, _ in triples if v <= low + (error or 0.0)]
+    if error and len(triples) > 1 and len(within) == len(triples):
+        return Criterion("estimated_risk", None, None,
                          f"{smallest}, but every recorded epoch is within one standard error "
                          "of it: the estimate does not single out an epoch (more shadows "
                          "narrow it).")
     epoch, value = within[0]
     if epoch == low_epoch:
-        return Criterion(name, epoch, value,
+        return Criterion("estimated_risk", epoch, value,
                          f"{smallest}, an estimate, not a bound"
                          + _edge_note(epoch, rows[-1].epoch, len(triples)) + ".")
-    return Criterion(name, epoch, value,
+    return Criterion("estimated_risk", epoch, value,
                      f"{smallest}; epoch {epoch} ({value:.4g}) is the earliest within one "
                      "standard error of it, so the later minimum is not told apart from it "
                      "beyond noise (the one-standard-error rule); an estimate, not a bound.")
@@ -338,18 +334,17 @@ def _estimated_risk(rows: Sequence[AdviceRow]) -> Criterion | None:
 
 def _unchosen(criteria: Sequence[Criterion]) -> str:
     """Why no measured criterion picked an epoch, one clause each."""
-    named = {c.name: c for c in criteria}
-    estimate = named.get("estimated_risk")
+    estimated = any(c.name == "estimated_risk" for c in criteria)
     return ", ".join((
         "no held-out loss",
-        "no gap estimate" if estimate is None else
+        "no gap estimate" if not estimated else
         "a gap estimate that does not single out an epoch (every epoch within one standard "
         "error of its minimum)",
         "and no divergence acceleration"))
 
 
 def _follow_sentence(chosen: Criterion | None, guarantee: Criterion, bound_name: str,
-                     target: float | None, why_none: str = "") -> str:
+                     target: float | None, why_none: str) -> str:
     """One sentence saying which stop to follow and why."""
     if chosen is None:
         return (f"No criterion could choose an epoch: there is {why_none}; add a held-out set "

@@ -34,7 +34,7 @@ class VerdictLine:
 def verdict_lines(ordered: Sequence[EpochReading], rows: Sequence[AdviceRow], *,
                   chosen: Criterion | None, guarantee: Criterion, bound_name: str,
                   target: float | None, target_source: str, certified: bool, bound_reason: str,
-                  follow: str, shadows_needed: int | None, why_none: str = ""
+                  follow: str, shadows_needed: int | None, why_none: str
                   ) -> list[VerdictLine]:
     """The verdict for a run (see the module docstring)."""
     return [

@@ -29,7 +29,14 @@ from .bounding import (
     estimate_constants,
     estimation_skipped,
 )
-from .probe import PerExampleLoss, ProbeRows, ProbeSummary, model_losses, summarise_probe
+from .probe import (
+    PerExampleLoss,
+    ProbeRows,
+    ProbeSummary,
+    mean_and_error,
+    model_losses,
+    summarise_probe,
+)
 
 if TYPE_CHECKING:
     from ..shadows.batched import BatchedEngine
@@ -188,20 +195,12 @@ def build_holdout(shadows: Sequence[Shadow], replacements: Any,
     return ProbeRows.build(examples, ["holdout"] * len(rows), [-1] * len(rows), collate)
 
 
-def _mean_and_error(values: np.ndarray) -> tuple[float | None, float | None]:
-    finite = values[np.isfinite(values)]
-    if not finite.size:
-        return None, None
-    error = float(finite.std(ddof=1) / math.sqrt(finite.size)) if finite.size > 1 else None
-    return float(finite.mean()), error
-
-
 def held_out_summary(losses: np.ndarray | None, train_losses: np.ndarray) -> HeldOutSummary:
     """Summarise the main model's held-out losses against its training-probe losses."""
     if losses is None:
         return HeldOutSummary(0, None, None, None, None, None)
-    loss, error = _mean_and_error(losses)
-    train, train_error = _mean_and_error(train_losses)
+    loss, error = mean_and_error(losses)
+    train, train_error = mean_and_error(train_losses)
     if loss is None or train is None:
         return HeldOutSummary(int(losses.size), loss, error, None, None, None)
     gap = loss - train
@@ -304,8 +303,10 @@ def epoch_reading(epoch: int, steps: int, shadows: Sequence[Shadow], divergence:
         if fault is not None:
             notes.append(f"shadow_{k} frozen: {fault}")
     held = held_out if held_out is not None and held_out.count else None
-    probe_held = held is None and summary.holdout_loss is not None
-    if probe_held and held_out is not None:
+    # without the full evaluation, the probe's held-out rows (none without a held-out set)
+    count, error = (held.count, held.stderr) if held is not None else \
+        (summary.holdout_rows, summary.holdout_stderr)
+    if held is None and held_out is not None and summary.holdout_loss is not None:
         notes.append(f"held-out loss on the probe's {summary.holdout_rows} held-out row(s): every "
                      "held-out example is a shadow's replacement (never trained on by the main "
                      "run); a larger held-out set gives a steadier stop")
@@ -317,10 +318,7 @@ def epoch_reading(epoch: int, steps: int, shadows: Sequence[Shadow], divergence:
         gap_estimate=summary.gap_estimate, gap_stderr=summary.gap_stderr,
         train_loss=summary.train_loss,
         holdout_loss=summary.holdout_loss if held is None else held.loss,
-        holdout_count=held.count if held is not None else
-        summary.holdout_rows if probe_held else 0,
-        holdout_stderr=held.stderr if held is not None else
-        summary.holdout_stderr if probe_held else None,
+        holdout_count=count, holdout_stderr=error,
         run_gap=None if held is None else held.run_gap,
         run_gap_low=None if held is None else held.run_gap_low,
         run_gap_high=None if held is None else held.run_gap_high,

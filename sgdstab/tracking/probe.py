@@ -182,6 +182,15 @@ def _mean(values: np.ndarray) -> float | None:
     return float(values.mean()) if values.size else None
 
 
+def mean_and_error(values: np.ndarray) -> tuple[float | None, float | None]:
+    """Mean and standard error of the finite values (None where there are too few)."""
+    finite = values[np.isfinite(values)]
+    if not finite.size:
+        return None, None
+    error = float(finite.std(ddof=1) / math.sqrt(finite.size)) if finite.size > 1 else None
+    return float(finite.mean()), error
+
+
 def summarise_probe(main: np.ndarray, shadows: Sequence[np.ndarray], probe: ProbeRows,
                     fresh_replacements: bool, fresh_reason: str,
                     difference_kinds: Sequence[str],
@@ -241,8 +250,6 @@ def summarise_probe(main: np.ndarray, shadows: Sequence[np.ndarray], probe: Prob
     holdout_loss = _mean(held) if fresh_replacements else None
     if not fresh_replacements:
         notes.append("holdout loss not available: no held-out replacement set")
-    held_error = float(held.std(ddof=1) / math.sqrt(held.size)) \
-        if held.size >= 2 and np.isfinite(held).all() else None
+    held_error = mean_and_error(held)[1] if np.isfinite(held).all() else None
     return ProbeSummary(difference_max, difference_mean, gap, stderr, train_loss, holdout_loss,
-                        tuple(notes), int(held.size) if holdout_loss is not None else 0,
-                        held_error if holdout_loss is not None else None)
+                        tuple(notes), int(held.size), held_error)
