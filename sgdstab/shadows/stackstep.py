@@ -9,6 +9,7 @@ on a module over each slot and into one optimizer of the user's class over the s
 from __future__ import annotations
 
 import functools
+import weakref
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
@@ -52,7 +53,10 @@ class _StackStepper:
         self.skeleton = skeleton
         self.stepped = stepped
         self._main_modules = list(main_model.modules())
-        self._module_lists: dict[int, tuple[nn.Module, list[nn.Module]]] = {}
+        # each model's module list, held weakly: a strong reference here kept every stack's
+        # view modules, and with them the tensors of stacks long replaced, alive
+        self._module_lists: weakref.WeakKeyDictionary[nn.Module, list[nn.Module]] = \
+            weakref.WeakKeyDictionary()
         self._loss_module = _LossModule(skeleton, loss_of)
         self.verified = False
         self.updates = 0   # optimizer updates taken over a stack
@@ -64,11 +68,10 @@ class _StackStepper:
                 module.training = mode   # follow the user's train()/eval() choices per module
 
     def _modules_of(self, model: nn.Module) -> list[nn.Module]:
-        found = self._module_lists.get(id(model))
-        if found is None or found[0] is not model:
-            found = (model, list(model.modules()))
-            self._module_lists[id(model)] = found
-        return found[1]
+        found = self._module_lists.get(model)
+        if found is None:   # without ``model`` itself, which would keep its own key alive
+            found = self._module_lists[model] = list(model.modules())[1:]
+        return [model, *found]
 
     def gradients(self, stack: _Stack, group: StepGroup, constants: Mapping[str, torch.Tensor],
                   views: Views) -> tuple[dict[str, torch.Tensor], torch.Tensor]:

@@ -52,6 +52,12 @@ def finish_epoch(tracker: StabilityTracker) -> EpochReading:
     tracker._report_faults(tracker.engine.freeze_non_finite(tracker.shadows, tracker.steps))
     divergence, layer, audit = tracker._divergences()
     divergence = measure.masked_faults(divergence, tracker.shadows)
+    # the audit's verdict is read from the divergences alone: settled (and its runs freed)
+    # before the probe's evaluation, which would otherwise hold both at once
+    audit = measure.settle_audit(tracker.engine, tracker.audit_shadow, audit, notes,
+                                 LockstepWarning)
+    if tracker.audit_shadow is not None and tracker.audit_shadow not in tracker.engine.shadows:
+        tracker.audit_shadow = None   # its verdict is in and the engine dropped it
     if tracker._probe is None:
         tracker._probe = measure.build_probe(
             tracker.shadows, tracker.train_set, n=tracker.n, probe_set=tracker.probe_set,
@@ -61,10 +67,6 @@ def finish_epoch(tracker: StabilityTracker) -> EpochReading:
     notes += summary.notes
     held_out = tracker._held_out_summary(train_losses)
     tracker._see_losses(largest)
-    audit = measure.settle_audit(tracker.engine, tracker.audit_shadow, audit, notes,
-                                 LockstepWarning)
-    if tracker.audit_shadow is not None and tracker.audit_shadow not in tracker.engine.shadows:
-        tracker.audit_shadow = None   # its verdict is in and the engine dropped it
     bound_fields, violated = measure.epoch_bounds(
         tracker.current_constants(), divergence, notes, history=tracker.history, n=tracker.n,
         delta=tracker.delta, groups=tracker.groups, optimizer_reason=tracker._bounds_reason(),
