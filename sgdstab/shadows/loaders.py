@@ -6,9 +6,9 @@ the user's one and records each list of indices as it is drawn. Workers prefetch
 but batches come back in order, so the recorded lists sit in a FIFO and one is popped per batch.
 The sibling draws its base seed from the same generator (or the global RNG) exactly as the user's
 loader would, so the main run is unchanged. A loader with ``persistent_workers=True`` draws that
-seed once, when its workers start; its sibling is then kept for the tracker's life and persists
-too, so it draws the seed once as well and its workers' random state carries over the epochs
-exactly as the user's would.
+seed once, when its workers start; its sibling is then kept as long as the user's loader lives
+and persists too, so it draws the seed once as well and its workers' random state carries over
+the epochs exactly as the user's would.
 """
 
 from __future__ import annotations

@@ -51,16 +51,15 @@ def tracked_batches(tracker: StabilityTracker, loader: DataLoader) -> Iterator[A
 
 def sibling_loader(tracker: StabilityTracker, loader: DataLoader) -> tuple[DataLoader, Any]:
     """The recording sibling of ``loader``: a new one per pass, except for a loader with
-    persistent workers, whose sibling is kept (its workers and seed persist like the
-    user's loader's would)."""
+    persistent workers, whose sibling is kept while ``loader`` lives (its workers and seed
+    persist like the user's loader's would, and go when it goes)."""
     if isinstance(loader, DataLoader) and loader.num_workers > 0 and \
             loader.persistent_workers:
-        kept = tracker._siblings.get(id(loader))
-        if kept is None or kept[0] is not loader:
-            sibling, recorder = recording_loader(loader, tracker.train_set)
-            kept = tracker._siblings[id(loader)] = (loader, sibling, recorder)
-        kept[2].drawn.clear()
-        return kept[1], kept[2]
+        kept = tracker._siblings.get(loader)
+        if kept is None:
+            kept = tracker._siblings[loader] = recording_loader(loader, tracker.train_set)
+        kept[1].drawn.clear()
+        return kept
     return recording_loader(loader, tracker.train_set)
 
 

@@ -8,6 +8,7 @@ at construction (``checks``) live in their own modules, their functions assigned
 from __future__ import annotations
 
 import warnings
+import weakref
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -170,7 +171,10 @@ class StabilityTracker:
         self._checked_batch = False
         self._passes = 0            # passes over tracker.batches() since the last finish_epoch
         self._steps_at_finish = 0   # steps taken when finish_epoch last ran
-        self._siblings: dict[int, tuple[DataLoader, DataLoader, Any]] = {}   # persistent
+        # the recording siblings of loaders with persistent workers, by the user's loader and
+        # held weakly: a loader built anew each epoch lets its sibling (and workers) go with it
+        self._siblings: weakref.WeakKeyDictionary[DataLoader, tuple[DataLoader, Any]] = \
+            weakref.WeakKeyDictionary()
         self.time_spent = TimeSpent()
         self._swapped: np.ndarray | None = None   # the shadows' swapped indices, for hit counts
         self._swapped_set: set[int] = set()   # the same as a set (built with _swapped)
@@ -355,7 +359,7 @@ class StabilityTracker:
         for handle in self._hooks:
             handle.remove()
         self._hooks = []
-        self._siblings = {}   # lets kept loaders' persistent workers shut down
+        self._siblings = weakref.WeakKeyDictionary()   # kept siblings' workers shut down
         if self.sinks is not None:
             self.sinks.close()
 
