@@ -179,3 +179,20 @@ def test_a_step_hook_on_a_shadow_optimizer_keeps_one_call_per_shadow():
     shadow_optimizers = {id(s.optimizer) for s in engine.shadows}
     assert sum(id(opt) in shadow_optimizers for opt in calls) == 2 * 4   # every shadow, each step
     assert torch.equal(together[3], main)
+
+
+def test_a_removed_shadow_is_not_kept_alive_by_a_cached_grouped_step():
+    # the engine caches its grouped optimizers (over the shadows' own parameters); a shadow
+    # removed from the engine (the null-swap audit after the first epoch) must not stay alive in
+    # them: before, its optimizer, parameters and momentum lived on in the cache
+    import gc
+    import weakref
+
+    _, _, engine = _run(torch.optim.SGD, {"lr": 0.1, "momentum": 0.9}, grouped=True)
+    assert engine._grouped   # the steps went through a cached grouped optimizer
+    audit = next(s for s in engine.shadows if s.spec.origin == "self")
+    held = [weakref.ref(audit.optimizer), *(weakref.ref(p) for p in audit.model.parameters())]
+    engine.remove_shadow(audit)
+    del audit
+    gc.collect()
+    assert all(ref() is None for ref in held)

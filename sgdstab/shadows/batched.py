@@ -112,7 +112,7 @@ class BatchedEngine:
             self._twin_engine.remove_shadow(self._twin)
             self._twin = None
         if self._fallback is not None:
-            self._fallback.shadows.remove(shadow)
+            self._fallback.remove_shadow(shadow)
         if self._stack is not None:
             self._stack.slot.pop(id(shadow), None)  # its slot is dropped at the next restack
         if isinstance(shadow, BatchedShadow):

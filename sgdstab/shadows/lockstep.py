@@ -230,6 +230,9 @@ class PerShadowEngine:
 
     def remove_shadow(self, shadow: Shadow) -> None:
         self.shadows.remove(shadow)
+        # a cached grouped step over it would keep its parameters and optimizer state alive
+        self._grouped = {key: entry for key, entry in self._grouped.items()
+                         if all(o is not shadow.optimizer for o in entry[0])}
 
     # -- fork ---------------------------------------------------------------------------------
     def fork(self, shadow: Shadow, step: int, buffers: Mapping[str, torch.Tensor] | None) -> None:
