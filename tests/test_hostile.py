@@ -11,7 +11,14 @@ import torch.nn.functional as F
 from torch import nn
 from torch.utils.data import TensorDataset
 
-from sgdstab import Constants, LockstepError, ShadowFaultWarning, StabilityTracker, read_history
+from sgdstab import (
+    Constants,
+    LockstepError,
+    LockstepWarning,
+    ShadowFaultWarning,
+    StabilityTracker,
+    read_history,
+)
 
 from ._toy import DictPebbles, flat, loader, mlp, pebbles, train
 
@@ -194,6 +201,41 @@ def test_optimizer_step_outside_tracker_batches_warns():
             opt.step()
             break
     assert any("without a batch" in str(w.message) for w in caught)
+
+
+def test_a_step_the_shadows_skipped_marks_every_later_reading_and_fails_the_verdict(tmp_path):
+    # the null-swap audit ends with epoch 1 (exact here); an extra optimizer.step() in epoch 2,
+    # on a batch not drawn through tracker.batches(), leaves the shadows a step behind: before,
+    # epochs 2-4 read like any others and only a one-time warning said so
+    data = pebbles()
+    tracker = _make(data=data, shadows=2)
+    model, opt = tracker.model, tracker.optimizer
+    readings = train(model, opt, loader(data), epochs=1, tracker=tracker)
+    assert readings[0].audit_divergence == 0.0
+    with pytest.warns(LockstepWarning, match="without a batch"):
+        for number, (x, y) in enumerate(tracker.batches(loader(data, seed=1))):
+            opt.zero_grad()
+            F.cross_entropy(model(x), y).backward()
+            opt.step()
+            if number == 2:   # one more step on the same batch, outside the replayed loop
+                opt.zero_grad()
+                F.cross_entropy(model(x), y).backward()
+                opt.step()
+    readings.append(tracker.finish_epoch())
+    state = tracker.state_dict()
+    tracker.close()
+    resumed = _make(model=model, data=data, shadows=2, optimizer=opt)
+    resumed.load_state_dict(state)
+    readings += train(model, opt, loader(data, seed=2), epochs=1, tracker=resumed)
+    lost = [[n for n in r.notes if n.startswith("lockstep lost")] for r in readings]
+    assert lost[0] == []
+    assert len(lost[1]) == 1 and "ran 1 time(s) this epoch" in lost[1][0]
+    steps_before = readings[0].steps + 3   # epoch 1's steps and the three of epoch 2 before it
+    assert f"first such step was in epoch 2, after {steps_before} replayed step(s)" in lost[1][0]
+    assert len(lost[2]) == 1 and "this epoch" not in lost[2][0]   # carried over the resume
+    line = resumed.advise().verdict[0]
+    assert (line.topic, line.status) == ("Lockstep audit", "fail")
+    assert "BROKEN at epoch 2" in line.text
 
 
 def test_one_shadow_or_none_gives_none_with_reasons_instead_of_dividing_by_zero():

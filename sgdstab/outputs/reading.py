@@ -11,7 +11,11 @@ from pathlib import Path
 from typing import Any
 
 __all__ = ["EpochReading", "read_history", "json_safe", "readings_to_frame", "versioned",
-           "SCHEMA_VERSION"]
+           "SCHEMA_VERSION", "LOST_LOCKSTEP"]
+
+#: How a reading's note starts once the shadows skipped a main-run step they could not replay
+#: (every reading from then on carries it; the verdict fails the lockstep on it)
+LOST_LOCKSTEP = "lockstep lost"
 
 #: Version of the record layout in history.jsonl and advice.json; bumped when a field changes
 #: meaning or is removed (new fields do not bump it). Records written before it existed have no

@@ -11,7 +11,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-from .reading import EpochReading
+from .reading import LOST_LOCKSTEP, EpochReading
 from .trends import finite_or_none
 
 if TYPE_CHECKING:
@@ -49,6 +49,12 @@ def verdict_lines(ordered: Sequence[EpochReading], rows: Sequence[AdviceRow], *,
 
 def _lockstep(ordered: Sequence[EpochReading]) -> VerdictLine:
     topic = "Lockstep audit"
+    lost = next((r for r in ordered if any(n.startswith(LOST_LOCKSTEP) for n in r.notes)), None)
+    if lost is not None:   # whatever the audit read: it may have ended before the skipped step
+        return VerdictLine(topic, "fail", f"BROKEN at epoch {lost.epoch}: optimizer.step() ran "
+                           "without a batch from tracker.batches(), so the shadows skipped a step "
+                           "of the main run and no longer follow it; the divergences from then "
+                           "on are not trustworthy.")
     for reading in ordered:
         value = finite_or_none(reading.audit_divergence)
         if reading.audit_divergence is not None and value == 0.0:

@@ -82,6 +82,8 @@ def tracker_state(tracker: StabilityTracker) -> dict[str, Any]:
         "groups": tracker.groups.state_dict(),
         "loss_seen": tracker.loss_seen,
         "initial_loss": tracker.initial_loss,
+        "lockstep_lost": tracker._lockstep_lost,
+        "skipped_steps": tracker._skipped_steps,
     }
 
 
@@ -147,6 +149,9 @@ def restore_tracker(tracker: StabilityTracker, state: Mapping[str, Any]) -> None
         tracker.groups = GroupSettings.from_state_dict(state["groups"])
     tracker.loss_seen = state.get("loss_seen")
     tracker.initial_loss = state.get("initial_loss")
+    lost = state.get("lockstep_lost")
+    tracker._lockstep_lost = None if lost is None else (int(lost[0]), int(lost[1]))
+    tracker._skipped_steps = int(state.get("skipped_steps", 0))
     tracker._collate_rows_for = None   # rows are rebuilt from the specs at the next batches()
     tracker._probe = None
     tracker._holdout = None

@@ -44,6 +44,9 @@ def finish_epoch(tracker: StabilityTracker) -> EpochReading:
                      "optimizer.step() were never stepped (a break in the loop?): dropped, "
                      "the shadows do not replay them")
         tracker._group = StepGroup([], [], [])
+    if tracker._lockstep_lost is not None:
+        notes.append(measure.lost_lockstep_note(*tracker._lockstep_lost, tracker._skipped_steps))
+        tracker._skipped_steps = 0
     tracker._passes = 0
     tracker._steps_at_finish = tracker.steps
     tracker.epoch += 1

@@ -128,6 +128,9 @@ def step_shadows(tracker: StabilityTracker, optimizer: torch.optim.Optimizer) ->
         tracker._warn_once("unrecorded", "optimizer.step() ran without a batch from "
                            "tracker.batches(): the shadows skipped this step and no longer "
                            "follow the main run", LockstepWarning)
+        tracker._skipped_steps += 1   # every later reading says so (``lost_lockstep_note``)
+        if tracker._lockstep_lost is None:
+            tracker._lockstep_lost = (tracker.epoch + 1, tracker.steps)
         return 0.0
     stepping = tracker._run_engine(group) if tracker.engine.shadows else 0.0
     drawn = tracker._drawn_indices(group)

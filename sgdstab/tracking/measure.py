@@ -18,7 +18,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from ..outputs.reading import EpochReading
+from ..outputs.reading import LOST_LOCKSTEP, EpochReading
 from ..shadows.lockstep import Shadow, preserved_rng, squared_distance, trainable_parameters
 from .bounding import (
     ESTIMATE_ANYWAY,
@@ -44,9 +44,9 @@ if TYPE_CHECKING:
 
 __all__ = ["divergences", "divergence", "masked_faults", "default_probe_size", "build_probe",
            "fresh_replacements", "build_holdout", "held_out_summary", "largest_loss",
-           "HeldOutSummary", "probe_summary", "settle_audit", "constants_rows",
-           "estimate_constants", "estimation_skipped", "ESTIMATE_ANYWAY", "epoch_bounds",
-           "audit_assumptions", "breach_causes", "epoch_reading"]
+           "HeldOutSummary", "probe_summary", "settle_audit", "lost_lockstep_note",
+           "constants_rows", "estimate_constants", "estimation_skipped", "ESTIMATE_ANYWAY",
+           "epoch_bounds", "audit_assumptions", "breach_causes", "epoch_reading"]
 
 
 # -- divergences --------------------------------------------------------------------------------
@@ -256,6 +256,16 @@ def probe_summary(model: nn.Module, engine: PerShadowEngine | BatchedEngine,
 
 
 # -- the null-swap audit ------------------------------------------------------------------------
+def lost_lockstep_note(epoch: int, replayed: int, skipped: int) -> str:
+    """The note on every reading after an optimizer step the shadows could not replay (it ran
+    without a batch from tracker.batches()): from then on they do not follow the main run."""
+    this_epoch = (f"optimizer.step() ran {skipped} time(s) this epoch without a batch from "
+                  "tracker.batches(), and the shadows skipped those steps; ") if skipped else ""
+    return (f"{LOST_LOCKSTEP}: {this_epoch}the first such step was in epoch {epoch}, after "
+            f"{replayed} replayed step(s). From then on the shadows do not follow the main run, "
+            "so the divergences and loss differences are not trustworthy")
+
+
 def settle_audit(engine: PerShadowEngine | BatchedEngine, shadow: Shadow | None,
                  audit: float | None, notes: list[str], category: type[Warning]
                  ) -> float | None:

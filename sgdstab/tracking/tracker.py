@@ -168,6 +168,10 @@ class StabilityTracker:
         self._per_example = PerExampleLoss(loss_fn, step_loss)
         self._warned: set[str] = set()
         self._assumption_violated = False
+        # optimizer steps the shadows could not replay (no batch from tracker.batches()): how
+        # many this epoch, and (epoch, replayed steps before it) of the first one ever
+        self._skipped_steps = 0
+        self._lockstep_lost: tuple[int, int] | None = None
         self._checked_batch = False
         self._passes = 0            # passes over tracker.batches() since the last finish_epoch
         self._steps_at_finish = 0   # steps taken when finish_epoch last ran
