@@ -30,7 +30,16 @@ from .fallback import (
 )
 from .lockstep import LockstepError, LossOf, NeighbourSpec, PerShadowEngine, Shadow, StepGroup
 from .restack import restack, restack_in_place
-from .stacking import SlotState, _CannotBatch, _layout, _module_over, _Stack, _state_from_module
+from .stacking import (
+    SlotState,
+    _CannotBatch,
+    _layout,
+    _module_over,
+    _Stack,
+    _state_from_module,
+    after_each_run,
+    why_not_batched,
+)
 from .stackstep import _StackStepper
 
 __all__ = ["BatchedEngine", "BatchedShadow", "EngineFallbackWarning", "SlotState"]
@@ -76,6 +85,8 @@ class BatchedEngine:
         # Same contract as PerShadowEngine.gradient_sync: called as gradient_sync(module, finite)
         # on each stepped run (here a module over the run's slot), returns whether all were finite.
         self.gradient_sync: Callable[[nn.Module, bool], bool] | None = None
+        # Same contract as PerShadowEngine.after_step, called on a module over each stepped run
+        self.after_step: Callable[[nn.Module], Any] | None = None
         self.shadows: list[BatchedShadow] = []
         self.fallback_reason: str | None = None
         self._fallback: PerShadowEngine | None = None
@@ -251,6 +262,7 @@ class BatchedEngine:
         if twin is not None and twin.active and audits:
             twin.spec, twin.row = audits[0].spec, audits[0].row
             self._twin_engine.gradient_sync = self.gradient_sync
+            self._twin_engine.after_step = self.after_step
             self._twin_engine.step([twin], group, step)
         if self._fallback is not None:
             return self._fallback_step(shadows, group, step)
@@ -286,11 +298,13 @@ class BatchedEngine:
         except Exception as error:  # noqa: BLE001 - any failure of the batched path falls back
             for name, backup in self._buffer_backup.items():
                 self._constants[name].copy_(backup)
-            self._fall_back(_reason(error))
+            self._fall_back(why_not_batched(error))
             return self._fallback_step(shadows, group, step)
-        if done is not None:
-            return self._freeze_faulted(stack, *done, step)
-        return self._apply(stack, gradients, finite, step)
+        faulted = self._freeze_faulted(stack, *done, step) if done is not None else \
+            self._apply(stack, gradients, finite, step)
+        if self.after_step is not None and self._stack is not None:
+            after_each_run(self._stack, self._views(), self.after_step, faulted)
+        return faulted
 
     def freeze_non_finite(self, shadows: Sequence[Shadow], steps: int) -> list[Shadow]:
         """Freeze the active shadows whose parameters are no longer finite; returns them (see
@@ -381,11 +395,3 @@ class BatchedEngine:
     _load_into_module = load_into_module
     _fallback_fork = fallback_fork
     _fallback_step = fallback_step
-
-
-def _reason(error: BaseException) -> str:
-    text = str(error).strip().splitlines()
-    first = text[0] if text else ""
-    if isinstance(error, _CannotBatch):
-        return first
-    return f"vmap cannot run this model or loss ({type(error).__name__}: {first[:160]})"

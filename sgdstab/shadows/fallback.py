@@ -83,6 +83,7 @@ def fallback_step(engine: BatchedEngine, shadows: Sequence[Shadow], group: StepG
                    ) -> list[Shadow]:
     assert engine._fallback is not None
     engine._fallback.gradient_sync = engine.gradient_sync
+    engine._fallback.after_step = engine.after_step
     runs = [*([engine.reference] if engine.reference.forked else []), *shadows]
     faulted = engine._fallback.step(runs, group, step)
     return [s for s in faulted if s is not engine.reference]

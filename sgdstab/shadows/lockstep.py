@@ -163,6 +163,9 @@ class PerShadowEngine:
         # all-reduce the shadow's gradients. It is called even when this process's loss was not
         # finite (so every rank joins the same collectives) and returns whether all ranks' were.
         self.gradient_sync: Callable[[nn.Module, bool], bool] | None = None
+        # Called as after_step(shadow_model) after each shadow's optimizer step, under no_grad:
+        # the user's change of the parameters after their step (a projection), set by the tracker
+        self.after_step: Callable[[nn.Module], Any] | None = None
         params = list(main_model.parameters())
         position = {id(p): k for k, p in enumerate(params)}
         self.group_positions: list[list[int]] = []
@@ -300,6 +303,9 @@ class PerShadowEngine:
         for shadow in ready:
             for p in shadow.params:
                 p.grad = None
+            if self.after_step is not None:
+                with torch.no_grad():
+                    self.after_step(shadow.model)
 
     def step(self, shadows: Sequence[Shadow], group: StepGroup, step: int) -> list[Shadow]:
         """Take one optimizer step on each shadow, replaying the group's batches and RNG states.

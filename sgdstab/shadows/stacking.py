@@ -22,7 +22,7 @@ from .lockstep import LockstepError
 if TYPE_CHECKING:
     from .batched import BatchedShadow
 
-__all__ = ["SHARED_STATE_KEYS", "SlotState"]
+__all__ = ["SHARED_STATE_KEYS", "SlotState", "after_each_run", "why_not_batched"]
 
 # State entries that are one value for the whole tensor (step counters and the like); they are
 # shared by all slots, which is right because every slot descends from the same reference run.
@@ -320,3 +320,31 @@ def _summed(total: dict[str, torch.Tensor] | None, gradients: dict[str, torch.Te
     for name in total:
         total[name] += gradients[name]
     return total
+
+
+def after_each_run(stack: _Stack, views: Sequence[nn.Module],
+                   after_step: Callable[[nn.Module], Any], faulted: Sequence[Any]) -> None:
+    """The user's ``after_step`` (a change of the parameters after the optimizer step, such as a
+    projection) on the module over each run of ``stack`` that was stepped and not frozen: it
+    changes the slot's tensors in place. One that replaces a parameter could not reach the stack,
+    and is refused."""
+    skipped = {id(s) for s in faulted}
+    with torch.no_grad():
+        for member, view in zip(stack.members, views):
+            if id(member) in skipped or member.fault is not None:
+                continue
+            before = [(p, p.data_ptr()) for p in view.parameters()]
+            after_step(view)
+            if any(p is not q or p.data_ptr() != ptr
+                   for (q, ptr), p in zip(before, view.parameters())):
+                raise LockstepError("after_step replaced a parameter tensor; it must change the "
+                                    "parameters in place (p.clamp_(...), p.mul_(...))")
+
+
+def why_not_batched(error: BaseException) -> str:
+    """The reason a batched step failed, as the fallback warning says it."""
+    text = str(error).strip().splitlines()
+    first = text[0] if text else ""
+    if isinstance(error, _CannotBatch):
+        return first
+    return f"vmap cannot run this model or loss ({type(error).__name__}: {first[:160]})"

@@ -70,8 +70,13 @@ def finish_epoch(tracker: StabilityTracker) -> EpochReading:
     notes += summary.notes
     held_out = tracker._held_out_summary(train_losses)
     tracker._see_losses(largest)
+    constants = tracker.current_constants()
+    if constants is not None and tracker.after_step is not None:
+        notes.append("after_step: the bounds hold only if it projects the parameters onto a "
+                     "convex set, such as clamping to a box or rescaling into a ball (a "
+                     "projection is non-expansive); the tool cannot check this")
     bound_fields, violated = measure.epoch_bounds(
-        tracker.current_constants(), divergence, notes, history=tracker.history, n=tracker.n,
+        constants, divergence, notes, history=tracker.history, n=tracker.n,
         delta=tracker.delta, groups=tracker.groups, optimizer_reason=tracker._bounds_reason(),
         model=tracker.model, warned=tracker._assumption_violated, category=AssumptionWarning,
         loss_seen=tracker.loss_seen)

@@ -291,7 +291,8 @@ def settle_audit(engine: PerShadowEngine | BatchedEngine, shadow: Shadow | None,
             "The divergences are not trustworthy. Likely causes: a non-deterministic op, RNG "
             "consumed outside the replayed region (between batches, or in code the shadows do "
             "not run: use step_loss for in-loop augmentation), a batch mutated in place, a "
-            "loss or clipping the shadows do not repeat (see before_step).",
+            "loss or clipping the shadows do not repeat (see before_step), parameters changed "
+            "after optimizer.step() (a projection: see after_step).",
             category, stacklevel=3)
         notes.append(f"lockstep broken: null-swap divergence {audit:.3e}")
     engine.remove_shadow(shadow)

@@ -84,6 +84,7 @@ class StabilityTracker:
         constants: Constants | str | None = NOT_GIVEN,
         delta: float = 0.05,
         before_step: Callable[[nn.Module], Any] | None = None,
+        after_step: Callable[[nn.Module], Any] | None = None,
         lazy_fork: bool = True,
         probe_size: int | None = NOT_GIVEN,
         engine: str = "auto",
@@ -146,6 +147,7 @@ class StabilityTracker:
         audit = bool(audit) and self._holds(-1)
         self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
                                   shadows=sum(held) + int(audit), loss_fn=loss_fn)
+        self.engine.after_step = self.after_step = after_step
         self.shadows: list[Shadow] = [
             self.engine.add_shadow(spec, None, f"shadow_{k}") if held[k] else
             self._held_elsewhere(k, spec) for k, spec in enumerate(self.specs)]
