@@ -525,6 +525,44 @@ def test_step_loss_alone_is_evaluated_on_all_rows_at_once():
     np.testing.assert_allclose(batched, one_by_one, rtol=1e-6, atol=1e-7)
 
 
+def test_a_torch_loss_module_gives_its_per_example_losses_in_one_call():
+    # nn.CrossEntropyLoss() takes no reduction argument: its per-example losses come from its
+    # reduction attribute set to "none" for the call (put back after), the values of
+    # F.cross_entropy(..., reduction="none") (torch, the reference), not one forward per row
+    data = pebbles()
+    model = mlp(dropout=0.0)
+    x, y = data.tensors
+    module = torch.nn.CrossEntropyLoss(label_smoothing=0.1)
+    per_example = PerExampleLoss(module, None)
+    calls = []
+    handle = model.register_forward_hook(lambda m, i, o: calls.append(1))
+    with torch.no_grad():
+        values = per_example(model, (x, y), len(x))
+        expected = F.cross_entropy(model(x), y, label_smoothing=0.1, reduction="none")
+    handle.remove()
+    assert per_example.vectorised is True and len(calls) == 2   # one call each
+    np.testing.assert_array_equal(values, expected.double().numpy())
+    assert module.reduction == "mean" and per_example.notes() == []
+
+
+def test_class_weights_that_cancel_on_one_row_are_said_in_the_notes():
+    data = pebbles()
+    model = mlp(dropout=0.0)
+    opt = _sgd(model)
+    weights = torch.tensor([1.0, 3.0])
+    weighted = torch.nn.CrossEntropyLoss(weight=weights)
+    tracker = StabilityTracker(model, opt, loss_fn=weighted, train_set=data, shadows=1)
+    reading = train(model, opt, loader(data), epochs=1, tracker=tracker, loss=weighted)[0]
+    assert tracker._per_example.vectorised is False   # the weights would not cancel in a batch
+    note = [n for n in reading.notes if n.startswith("per-example loss:")]
+    assert len(note) == 1 and "unweighted" in note[0]
+    with torch.no_grad():   # each row alone: the plain cross-entropy of that row
+        x, y = data.tensors
+        alone = F.cross_entropy(model(x[:4]), y[:4], reduction="none").double().numpy()
+        rows = tracker._per_example(model, (x[:4], y[:4]), 4)
+    np.testing.assert_allclose(rows, alone, rtol=1e-6)
+
+
 def test_lockstep_warning_is_still_raised_for_a_broken_lockstep():
     # guard: the refusals above did not silence the audit (a loss the shadows do not repeat)
     data = pebbles()

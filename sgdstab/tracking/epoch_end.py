@@ -67,7 +67,7 @@ def finish_epoch(tracker: StabilityTracker) -> EpochReading:
             replacements=tracker.replacements, size=tracker.probe_size, seed=tracker.seed,
             collate=tracker._collate, drawable=tracker.drawable)
     summary, train_losses, largest = tracker._probe_summary()
-    notes += summary.notes
+    notes += [*summary.notes, *tracker._per_example.notes()]
     held_out = tracker._held_out_summary(train_losses)
     tracker._see_losses(largest)
     constants = tracker.current_constants()

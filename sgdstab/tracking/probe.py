@@ -145,7 +145,7 @@ class PerExampleLoss:
             inputs, targets = self._pair(batch)
             assert self.loss_fn is not None  # self.vectorised starts False without a loss_fn
             try:
-                losses = self.loss_fn(model(inputs), targets, reduction="none")
+                losses = _unreduced(self.loss_fn, model(inputs), targets)
                 ok = isinstance(losses, torch.Tensor) and losses.dim() >= 1 and \
                     losses.shape[0] == length
             except TypeError:
@@ -156,6 +156,37 @@ class PerExampleLoss:
         rows = [float(self._one(model, select_rows(batch, slice(r, r + 1), length)))
                 for r in range(length)]
         return np.asarray(rows, dtype=np.float64)
+
+
+    def notes(self) -> list[str]:
+        """What the readings' per-example loss leaves out of ``loss_fn`` (for the notes)."""
+        loss_fn = self.loss_fn
+        if self.vectorised is not False or loss_fn is None or not any(
+                getattr(loss_fn, key, None) is not None for key in ("weight", "pos_weight")):
+            return []
+        return [f"per-example loss: {type(loss_fn).__name__} has class weights and takes no "
+                "reduction argument, so each example's loss is loss_fn on that example alone, "
+                "where its weight cancels: train_loss, holdout_loss and the loss differences "
+                "are unweighted (loss_fn on a batch weighs the classes)"]
+
+
+def _unreduced(loss_fn: Callable[..., torch.Tensor], outputs: torch.Tensor, targets: Any
+               ) -> torch.Tensor:
+    """``loss_fn`` per example: ``reduction="none"`` as an argument, or for a torch loss module
+    without class weights (whose per-example value is its value on that example alone) as its
+    ``reduction`` attribute for this one call. TypeError when neither applies."""
+    try:
+        return loss_fn(outputs, targets, reduction="none")
+    except TypeError:
+        if not isinstance(loss_fn, nn.modules.loss._Loss) or any(
+                getattr(loss_fn, key, None) is not None for key in ("weight", "pos_weight")):
+            raise
+    reduction = loss_fn.reduction
+    loss_fn.reduction = "none"
+    try:
+        return loss_fn(outputs, targets)
+    finally:
+        loss_fn.reduction = reduction
 
 
 def model_losses(model: nn.Module, probe: ProbeRows, per_example: PerExampleLoss) -> np.ndarray:
