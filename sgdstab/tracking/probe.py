@@ -157,12 +157,10 @@ class PerExampleLoss:
                 for r in range(length)]
         return np.asarray(rows, dtype=np.float64)
 
-
     def notes(self) -> list[str]:
         """What the readings' per-example loss leaves out of ``loss_fn`` (for the notes)."""
         loss_fn = self.loss_fn
-        if self.vectorised is not False or loss_fn is None or not any(
-                getattr(loss_fn, key, None) is not None for key in ("weight", "pos_weight")):
+        if self.vectorised is not False or loss_fn is None or not _class_weighted(loss_fn):
             return []
         return [f"per-example loss: {type(loss_fn).__name__} has class weights and takes no "
                 "reduction argument, so each example's loss is loss_fn on that example alone, "
@@ -178,8 +176,7 @@ def _unreduced(loss_fn: Callable[..., torch.Tensor], outputs: torch.Tensor, targ
     try:
         return loss_fn(outputs, targets, reduction="none")
     except TypeError:
-        if not isinstance(loss_fn, nn.modules.loss._Loss) or any(
-                getattr(loss_fn, key, None) is not None for key in ("weight", "pos_weight")):
+        if not isinstance(loss_fn, nn.modules.loss._Loss) or _class_weighted(loss_fn):
             raise
     reduction = loss_fn.reduction
     loss_fn.reduction = "none"
@@ -187,6 +184,10 @@ def _unreduced(loss_fn: Callable[..., torch.Tensor], outputs: torch.Tensor, targ
         return loss_fn(outputs, targets)
     finally:
         loss_fn.reduction = reduction
+
+
+def _class_weighted(loss_fn: Any) -> bool:
+    return any(getattr(loss_fn, key, None) is not None for key in ("weight", "pos_weight"))
 
 
 def model_losses(model: nn.Module, probe: ProbeRows, per_example: PerExampleLoss) -> np.ndarray:
