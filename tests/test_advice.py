@@ -145,6 +145,31 @@ def test_falls_back_to_divergence_acceleration_without_a_gap_estimate():
     assert "no constants" in advice.bound_reason
 
 
+def test_a_broken_lockstep_leaves_only_the_held_out_loss_to_choose():
+    # the same accelerating divergence and a gap estimate, but the null-swap audit drifted (or
+    # a later reading says a step was skipped): the criteria read from the shadows choose
+    # nothing, and a held-out loss, the main run's own, still does
+    values = [0.1 * e for e in range(1, 7)] + [0.6 + 0.1 * k + 0.05 * k * k for k in range(1, 6)]
+
+    def run(first: dict, later_notes: tuple[str, ...] = (), holdout=None):
+        return [reading(e, train=1.0 / e, divergence=(v,), gap=0.01, stderr=0.001,
+                        holdout=None if holdout is None else holdout(e),
+                        notes=later_notes if e > 1 else (), **(first if e == 1 else {}))
+                for e, v in enumerate(values, start=1)]
+
+    assert advise(run({"audit_divergence": 0.0})).suggested_epoch is not None
+    for broken in (run({"audit_divergence": 3e-9}),
+                   run({"audit_divergence": 0.0}, ("lockstep lost: ...",))):
+        advice = advise(broken)
+        assert advice.suggested_epoch is None and advice.verdict[0].status == "fail"
+        for name in ("estimated_risk", "divergence_acceleration"):
+            criterion = advice.criterion_named(name)
+            assert criterion.epoch is None and "lockstep is broken" in criterion.reason
+        assert "criteria read from the shadows are not used" in advice.reason
+    held = advise(run({"audit_divergence": 3e-9}, holdout=lambda e: (e - 4) ** 2 + 1.0))
+    assert (held.suggested_epoch, held.criterion) == (4, "holdout_loss")
+
+
 def test_nothing_to_decide_gives_no_suggestion():
     readings = [reading(e, train=1.0 / e) for e in range(1, 4)]
     advice = advise(readings)

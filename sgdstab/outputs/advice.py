@@ -38,6 +38,7 @@ from typing import Any
 
 from .criteria import (
     LABELS,
+    LOCKSTEP_BROKEN,
     AdviceRow,
     Criterion,
     _certified_criterion,
@@ -62,7 +63,7 @@ from .trends import (
     finite_or_none,
     ordered_readings,
 )
-from .verdict import VerdictLine, verdict_lines
+from .verdict import VerdictLine, lockstep_line, verdict_lines
 
 __all__ = [
     "AdviceRow",
@@ -276,6 +277,9 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
         budget, guarantee = _guarantee(rows, series, ordered[-1], target, bound_name, plan)
     certified_pick = _certified_criterion(rows)
     measured = _measured_pick(rows, ordered, table, consecutive, relative_noise, noise_sigmas)
+    if lockstep_line(ordered).status == "fail":   # only the held-out loss is the main run's own
+        measured = [c if c.name == "holdout_loss" else
+                    Criterion(c.name, None, None, LOCKSTEP_BROKEN) for c in measured]
     criteria = tuple(c for c in (*measured, guarantee, certified_pick) if c is not None)
     criteria = tuple(Criterion(c.name, c.epoch, c.value, c.reason, LABELS.get(c.name, c.name))
                      for c in criteria)

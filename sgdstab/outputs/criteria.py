@@ -24,7 +24,7 @@ from .trends import (
     plan_projection,
 )
 
-__all__ = ["AdviceRow", "Criterion", "LABELS"]
+__all__ = ["AdviceRow", "Criterion", "LABELS", "LOCKSTEP_BROKEN"]
 
 #: Human labels of the criteria this advice names (reports and dashboards show these).
 LABELS: dict[str, str] = {name: CRITERION_LABELS[name] for name in (
@@ -332,8 +332,16 @@ def _estimated_risk(rows: Sequence[AdviceRow]) -> Criterion | None:
                      "beyond noise (the one-standard-error rule); an estimate, not a bound.")
 
 
+#: Why a criterion read from the shadows chose nothing once the lockstep is broken
+LOCKSTEP_BROKEN = ("Not used: the lockstep is broken (see the verdict), so the shadows' readings "
+                   "this rests on are not trustworthy.")
+
+
 def _unchosen(criteria: Sequence[Criterion]) -> str:
     """Why no measured criterion picked an epoch, one clause each."""
+    if any(c.reason == LOCKSTEP_BROKEN for c in criteria):
+        return ("no held-out loss, and the criteria read from the shadows are not used (the "
+                "lockstep is broken)")
     estimated = any(c.name == "estimated_risk" for c in criteria)
     return ", ".join((
         "no held-out loss",

@@ -17,7 +17,7 @@ from .trends import finite_or_none
 if TYPE_CHECKING:
     from .criteria import AdviceRow, Criterion
 
-__all__ = ["VerdictLine", "verdict_lines", "STATUSES"]
+__all__ = ["VerdictLine", "verdict_lines", "lockstep_line", "STATUSES"]
 
 STATUSES = ("ok", "warn", "fail", "info")
 
@@ -38,7 +38,7 @@ def verdict_lines(ordered: Sequence[EpochReading], rows: Sequence[AdviceRow], *,
                   ) -> list[VerdictLine]:
     """The verdict for a run (see the module docstring)."""
     return [
-        _lockstep(ordered),
+        lockstep_line(ordered),
         _pathwise(ordered, rows),
         _guarantee(rows, guarantee, bound_name, target, target_source, certified, bound_reason),
         _measured(chosen, why_none),
@@ -47,7 +47,8 @@ def verdict_lines(ordered: Sequence[EpochReading], rows: Sequence[AdviceRow], *,
     ]
 
 
-def _lockstep(ordered: Sequence[EpochReading]) -> VerdictLine:
+def lockstep_line(ordered: Sequence[EpochReading]) -> VerdictLine:
+    """Whether the shadows followed the main run: the null-swap audit, or a step they skipped."""
     topic = "Lockstep audit"
     lost = next((r for r in ordered if any(n.startswith(LOST_LOCKSTEP) for n in r.notes)), None)
     if lost is not None:   # whatever the audit read: it may have ended before the skipped step
