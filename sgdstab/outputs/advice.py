@@ -277,7 +277,8 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
         budget, guarantee = _guarantee(rows, series, ordered[-1], target, bound_name, plan)
     certified_pick = _certified_criterion(rows)
     measured = _measured_pick(rows, ordered, table, consecutive, relative_noise, noise_sigmas)
-    if lockstep_line(ordered).status == "fail":   # only the held-out loss is the main run's own
+    broken = lockstep_line(ordered).status == "fail"
+    if broken:   # only the held-out loss is the main run's own
         measured = [c if c.name == "holdout_loss" else
                     Criterion(c.name, None, None, LOCKSTEP_BROKEN) for c in measured]
     criteria = tuple(c for c in (*measured, guarantee, certified_pick) if c is not None)
@@ -289,7 +290,7 @@ def advise(readings: Sequence[EpochReading | Mapping[str, Any]], target: float |
     guarantee = next(c for c in criteria if c.name == "guarantee")
     if follow == "guarantee" and guarantee.epoch is not None:
         chosen = guarantee
-    why_none = _unchosen(criteria)
+    why_none = _unchosen(criteria, broken)
     reason = _follow_sentence(chosen, guarantee, bound_name, target, why_none)
     last = ordered[-1]
     needed = _shadows_needed(last)

@@ -337,9 +337,10 @@ LOCKSTEP_BROKEN = ("Not used: the lockstep is broken (see the verdict), so the s
                    "this rests on are not trustworthy.")
 
 
-def _unchosen(criteria: Sequence[Criterion]) -> str:
-    """Why no measured criterion picked an epoch, one clause each."""
-    if any(c.reason == LOCKSTEP_BROKEN for c in criteria):
+def _unchosen(criteria: Sequence[Criterion], broken: bool) -> str:
+    """Why no measured criterion picked an epoch, one clause each (``broken``: the lockstep
+    is, so the criteria read from the shadows were not used)."""
+    if broken:
         return ("no held-out loss, and the criteria read from the shadows are not used (the "
                 "lockstep is broken)")
     estimated = any(c.name == "estimated_risk" for c in criteria)

@@ -303,7 +303,7 @@ class BatchedEngine:
         faulted = self._freeze_faulted(stack, *done, step) if done is not None else \
             self._apply(stack, gradients, finite, step)
         if self.after_step is not None and self._stack is not None:
-            after_each_run(self._stack, self._views(), self.after_step, faulted)
+            after_each_run(self._stack, self._views(), self.after_step)
         return faulted
 
     def freeze_non_finite(self, shadows: Sequence[Shadow], steps: int) -> list[Shadow]:

@@ -323,15 +323,14 @@ def _summed(total: dict[str, torch.Tensor] | None, gradients: dict[str, torch.Te
 
 
 def after_each_run(stack: _Stack, views: Sequence[nn.Module],
-                   after_step: Callable[[nn.Module], Any], faulted: Sequence[Any]) -> None:
+                   after_step: Callable[[nn.Module], Any]) -> None:
     """The user's ``after_step`` (a change of the parameters after the optimizer step, such as a
     projection) on the module over each run of ``stack`` that was stepped and not frozen: it
     changes the slot's tensors in place. One that replaces a parameter could not reach the stack,
     and is refused."""
-    skipped = {id(s) for s in faulted}
     with torch.no_grad():
         for member, view in zip(stack.members, views):
-            if id(member) in skipped or member.fault is not None:
+            if member.fault is not None:   # frozen, at this step or before
                 continue
             before = [(p, p.data_ptr()) for p in view.parameters()]
             after_step(view)

@@ -71,7 +71,7 @@ def finish_epoch(tracker: StabilityTracker) -> EpochReading:
     held_out = tracker._held_out_summary(train_losses)
     tracker._see_losses(largest)
     constants = tracker.current_constants()
-    if constants is not None and tracker.after_step is not None:
+    if constants is not None and tracker.engine.after_step is not None:
         notes.append("after_step: the bounds hold only if it projects the parameters onto a "
                      "convex set, such as clamping to a box or rescaling into a ball (a "
                      "projection is non-expansive); the tool cannot check this")

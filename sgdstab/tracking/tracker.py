@@ -147,7 +147,7 @@ class StabilityTracker:
         audit = bool(audit) and self._holds(-1)
         self.engine = make_engine(engine, model, optimizer, self._loss_of, before_step,
                                   shadows=sum(held) + int(audit), loss_fn=loss_fn)
-        self.engine.after_step = self.after_step = after_step
+        self.engine.after_step = after_step
         self.shadows: list[Shadow] = [
             self.engine.add_shadow(spec, None, f"shadow_{k}") if held[k] else
             self._held_elsewhere(k, spec) for k, spec in enumerate(self.specs)]
